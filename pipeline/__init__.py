@@ -1,0 +1,3 @@
+"""rarefill: synthetic-data augmentation for rare-object detection data sets."""
+
+__version__ = "0.1.0"
