@@ -82,16 +82,21 @@ def reports_errors(command: F) -> F:
     return wrapper  # type: ignore[return-value]
 
 
+def _print_version(value: bool) -> None:
+    if value:
+        typer.echo(f"rarefill {__version__}")
+        raise typer.Exit(0)
+
+
 @app.callback()
 def main(
     ctx: typer.Context,
     debug: Annotated[bool, typer.Option("--debug", help="Show the full traceback when something fails.")] = False,
-    version: Annotated[bool, typer.Option("--version", help="Print the version and exit.")] = False,
+    version: Annotated[
+        bool, typer.Option("--version", callback=_print_version, is_eager=True, help="Print the version and exit.")
+    ] = False,
 ) -> None:
     """Expand rare classes of a COCO detection data set with synthetic, filtered, labelled images."""
-    if version:
-        typer.echo(f"rarefill {__version__}")
-        raise typer.Exit(0)
     ctx.obj = {"debug": debug}
 
 

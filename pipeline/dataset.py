@@ -156,7 +156,7 @@ def _upright_size(path: Path, file: Path, where: str) -> tuple[int, int]:
             raise DatasetError(file, where, f"image file {path} is empty")
         with Image.open(path) as img:
             width, height = img.size
-            orientation = img.getexif().get(_EXIF_ORIENTATION, 1)
+            orientation = _header_orientation(img)
     except FileNotFoundError:
         raise DatasetError(file, where, f"image file {path} not found") from None
     except DatasetError:
@@ -166,6 +166,19 @@ def _upright_size(path: Path, file: Path, where: str) -> tuple[int, int]:
     if orientation in _SWAPPING_ORIENTATIONS:
         width, height = height, width
     return width, height
+
+
+def _header_orientation(img: Image.Image) -> int:
+    # Pillow's PNG getexif() decodes the whole image to find a trailing eXIf chunk; only the header's
+    # chunks are looked at here, so that validation never reads pixels.
+    if img.format == "PNG":
+        raw = img.info.get("exif")
+        if not raw:
+            return 1
+        exif = Image.Exif()
+        exif.load(raw)
+        return exif.get(_EXIF_ORIENTATION, 1)
+    return img.getexif().get(_EXIF_ORIENTATION, 1)
 
 
 # --------------------------------------------------------------------------------------------------
