@@ -1,0 +1,566 @@
+"""The ground-plane model: expected box height of a class at a bottom row, and ground distance.
+
+For a roughly level pinhole camera at height ``h_cam`` over a flat ground, an object of real height
+``H`` standing on the ground with its lower box edge at image row ``v_b`` (rows counted top-down) has
+image height
+
+    h = H (v_b - v_h) / h_cam = r_c (v_b - v_h),
+
+where ``v_h`` is the horizon row and ``r_c = H / h_cam`` the class's *height ratio*. :func:`fit_ground`
+recovers ``v_h`` and every class's ``r_c`` from the labelled boxes alone, so the model is in pixels and
+ratios; metres enter only through the prior height table (classes with too few boxes) and through
+:func:`ground_distance`, which also needs the focal length (boxes alone cannot tell it: ``h``, ``w`` and
+``v_b - v_h`` all scale with ``f``).
+
+The horizon is one row for the whole data set: a per-image horizon for a pitching camera is not
+modelled (the fit's residual spread absorbs small pitch changes).
+
+References
+----------
+.. [1] D. Hoiem, A. A. Efros, M. Hebert, "Putting Objects in Perspective", CVPR 2006; IJCV 80, 2008.
+.. [2] R. Hartley, A. Zisserman, "Multiple View Geometry in Computer Vision", 2nd ed., 2004 (pinhole
+   camera: ``h = f H / Z`` and ``v_b = v_h + f h_cam / Z``).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from typing import Any, Literal
+
+import numpy as np
+
+from . import __version__
+from .dataset import Dataset
+from .errors import DatasetError
+
+PRIOR_HEIGHTS_M: Mapping[str, tuple[float, str]] = {
+    "car": (1.72, "nuScenes anchor mean height (3D detectors' anchor configs)"),
+    "truck": (2.73, "nuScenes anchor mean height"),
+    "bus": (3.47, "nuScenes anchor mean height"),
+    "trailer": (3.82, "nuScenes anchor mean height"),
+    "construction_vehicle": (3.13, "nuScenes anchor mean height"),
+    "pedestrian": (1.76, "nuScenes anchor mean height"),
+    "bicycle": (1.27, "nuScenes anchor mean height"),
+    "motorcycle": (1.44, "nuScenes anchor mean height"),
+    "van": (2.2, "from memory: panel vans are about 1.9-2.6 m tall"),
+    "tractor": (2.8, "from memory: farm tractors with a cab are about 2.5-3.1 m tall"),
+    "works_trailer": (2.6, "from memory: road-works trailers with a raised warning board, about 2.3-3 m"),
+}
+"""Default real heights (metres) of classes, with where each value comes from. Names are matched after
+lower-casing and turning spaces and hyphens into underscores."""
+
+MIN_FIT_BOXES = 8
+"""A class needs this many usable boxes to have its ratio fitted; fewer and its prior height is used.
+Below about 8 boxes the robust spread (a median absolute deviation) is too unstable to set limits on."""
+
+PRIOR_LOG_SD = 0.15
+"""Spread (sd of log height) given to a class scaled from its prior height: Hoiem et al.'s car prior has
+sd 0.21 m on 1.59 m (0.13), rounded up because the prior is a class-wide guess, not this data's mean."""
+
+BORDER_PX = 1.0
+"""A box within this many pixels of an image edge is truncated by the frame and is not used for fitting."""
+
+_RANSAC_HYPOTHESES = 400
+_INLIER_LOG = 0.25
+_TUKEY_C = 4.685
+_FORMAT = "rarefill.ground/1"
+
+
+@dataclass(frozen=True)
+class ClassGround:
+    """One class's fitted relation ``h = height_ratio * (bottom_row - horizon_row)``.
+
+    Attributes
+    ----------
+    height_ratio : float
+        ``H / h_cam``: the class's real height in units of the camera height.
+    spread : float
+        Robust standard deviation of ``log(h / expected)`` over the class's boxes (1.4826 x the median
+        absolute deviation); for a prior class, :data:`PRIOR_LOG_SD` combined with the disagreement of
+        the fitted classes' camera-height estimates.
+    n_boxes : int
+        Boxes that carried the fit (inliers after robust reweighting); 0..n for a prior class.
+    source : {"fitted", "prior"}
+    """
+
+    height_ratio: float
+    spread: float
+    n_boxes: int
+    source: Literal["fitted", "prior"]
+
+
+@dataclass(frozen=True)
+class HeightBand:
+    """Expected box height (px) at a bottom row, and the plausible band ``[low, high]`` around it."""
+
+    expected: float
+    low: float
+    high: float
+
+
+@dataclass(frozen=True)
+class GroundModel:
+    """A fitted ground-plane model of one data set (one image size, one horizon).
+
+    Attributes
+    ----------
+    horizon_row : float
+        Image row of the horizon (rows top-down, may be negative or beyond the image).
+    classes : mapping of str to ClassGround
+        Per class name. A class absent here had neither enough boxes nor a way to scale a prior.
+    camera_height_m : float or None
+        Camera height above the ground estimated from fitted classes' ratios and their prior heights
+        (``h_cam = H_prior / r_c``, log-mean weighted by boxes used); None when no fitted class has a prior.
+    image_width, image_height : int
+        Size of the images the model was fitted on (pixels).
+    prior_heights_m : mapping of str to float
+        The prior heights used (for provenance).
+    """
+
+    horizon_row: float
+    classes: Mapping[str, ClassGround]
+    camera_height_m: float | None
+    image_width: int
+    image_height: int
+    prior_heights_m: Mapping[str, float] = field(default_factory=dict)
+
+    def class_ground(self, category_name: str) -> ClassGround:
+        """The :class:`ClassGround` of a class; ``ValueError`` naming the known classes otherwise."""
+        try:
+            return self.classes[category_name]
+        except KeyError:
+            known = ", ".join(self.classes) or "none"
+            raise ValueError(
+                f"ground model has no class {category_name!r} (known: {known}); it needs {MIN_FIT_BOXES} usable "
+                "boxes or a prior height plus a fitted class to scale it"
+            ) from None
+
+    def expected_height(self, category_name: str, bottom_row: float, *, k_sd: float = 2.5) -> HeightBand:
+        """Expected image height (px) of a ``category_name`` box whose lower edge is at ``bottom_row``.
+
+        The band is ``expected * exp(+-k_sd * spread)``: ``k_sd = 2.5`` keeps about 99% of a normal
+        log-height distribution, so a box outside it is implausibly scaled for the data set.
+
+        Raises
+        ------
+        ValueError
+            Unknown class, ``k_sd < 0``, or ``bottom_row`` at or above the horizon (no ground there).
+
+        References
+        ----------
+        Hoiem, Efros, Hebert, "Putting Objects in Perspective", CVPR 2006.
+        """
+        if not k_sd >= 0:
+            raise ValueError(f"k_sd must be >= 0, got {k_sd}")
+        cls = self.class_ground(category_name)
+        depth = float(bottom_row) - self.horizon_row
+        if not depth > 0:
+            raise ValueError(
+                f"bottom row {bottom_row:g} is at or above the horizon row {self.horizon_row:.1f}: no ground there"
+            )
+        expected = cls.height_ratio * depth
+        margin = math.exp(k_sd * cls.spread)
+        return HeightBand(expected, expected / margin, expected * margin)
+
+    def to_dict(self) -> dict[str, Any]:
+        """A JSON-ready dict (what made it: ``format`` and ``rarefill_version``)."""
+        return {
+            "format": _FORMAT,
+            "rarefill_version": __version__,
+            "horizon_row": self.horizon_row,
+            "camera_height_m": self.camera_height_m,
+            "image_width": self.image_width,
+            "image_height": self.image_height,
+            "classes": {
+                name: {"height_ratio": c.height_ratio, "spread": c.spread, "n_boxes": c.n_boxes, "source": c.source}
+                for name, c in self.classes.items()
+            },
+            "prior_heights_m": dict(self.prior_heights_m),
+        }
+
+    @classmethod
+    def from_dict(cls, data: Mapping[str, Any]) -> GroundModel:
+        """Rebuild a model from :meth:`to_dict` output; ``ValueError`` naming the bad key otherwise."""
+        if not isinstance(data, Mapping) or data.get("format") != _FORMAT:
+            raise ValueError(f"not a ground model: 'format' must be {_FORMAT!r}")
+        try:
+            classes = {
+                str(name): ClassGround(
+                    height_ratio=float(c["height_ratio"]),
+                    spread=float(c["spread"]),
+                    n_boxes=int(c["n_boxes"]),
+                    source=_source(c["source"]),
+                )
+                for name, c in data["classes"].items()
+            }
+            camera = data["camera_height_m"]
+            return cls(
+                horizon_row=float(data["horizon_row"]),
+                classes=classes,
+                camera_height_m=None if camera is None else float(camera),
+                image_width=int(data["image_width"]),
+                image_height=int(data["image_height"]),
+                prior_heights_m={str(k): float(v) for k, v in data.get("prior_heights_m", {}).items()},
+            )
+        except KeyError as exc:
+            raise ValueError(f"ground model: required key {exc.args[0]!r} is missing") from None
+        except (TypeError, AttributeError) as exc:
+            raise ValueError(f"ground model: malformed value ({exc})") from None
+
+
+def _source(value: Any) -> Literal["fitted", "prior"]:
+    if value == "fitted":
+        return "fitted"
+    if value == "prior":
+        return "prior"
+    raise ValueError(f"ground model: class source must be 'fitted' or 'prior', got {value!r}")
+
+
+def normalise_class_name(name: str) -> str:
+    """Lower-case, spaces and hyphens to underscores: how class names are matched to prior heights."""
+    return name.strip().lower().replace(" ", "_").replace("-", "_")
+
+
+def prior_heights(priors: Mapping[str, float] | None = None) -> dict[str, float]:
+    """The default :data:`PRIOR_HEIGHTS_M` table (metres) updated with ``priors`` (checked: finite, > 0)."""
+    table = {name: metres for name, (metres, _) in PRIOR_HEIGHTS_M.items()}
+    for name, metres in (priors or {}).items():
+        if not isinstance(metres, (int, float)) or isinstance(metres, bool) or not 0 < metres < math.inf:
+            raise ValueError(f"prior height of {name!r} must be a finite number of metres > 0, got {metres!r}")
+        table[normalise_class_name(name)] = float(metres)
+    return table
+
+
+# --------------------------------------------------------------------------------------------------
+# fitting
+
+
+@dataclass(frozen=True)
+class _Boxes:
+    """Usable boxes as parallel arrays: bottom row, height (px) and class index."""
+
+    bottom: np.ndarray
+    height: np.ndarray
+    cls: np.ndarray
+
+
+def usable_boxes(dataset: Dataset) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+    """Boxes fit for the ground model, per class name: ``(bottom_rows, heights)`` float64 arrays.
+
+    Left out: ``iscrowd`` regions and boxes within :data:`BORDER_PX` of an image edge (truncated by the
+    frame, so their height or bottom row is not the object's).
+    """
+    names = dataset.category_names()
+    rows: dict[str, tuple[list[float], list[float]]] = {name: ([], []) for name in names.values()}
+    for scene in dataset.scenes:
+        for ann in scene.annotations:
+            x, y, w, h = ann.bbox
+            truncated = (
+                x <= BORDER_PX
+                or y <= BORDER_PX
+                or x + w >= scene.width - BORDER_PX
+                or y + h >= scene.height - BORDER_PX
+            )
+            if ann.iscrowd or truncated:
+                continue
+            rows[names[ann.category_id]][0].append(y + h)
+            rows[names[ann.category_id]][1].append(h)
+    return {name: (np.asarray(b, dtype=np.float64), np.asarray(h, dtype=np.float64)) for name, (b, h) in rows.items()}
+
+
+def fit_ground(
+    dataset: Dataset,
+    *,
+    priors: Mapping[str, float] | None = None,
+    rng: np.random.Generator | int | None = 0,
+    min_boxes: int = MIN_FIT_BOXES,
+) -> GroundModel:
+    """Fit the horizon row and each class's height ratio ``H / h_cam`` from the labelled boxes.
+
+    Steps: (1) keep usable boxes (see :func:`usable_boxes`); (2) RANSAC over horizon hypotheses, each
+    made from two boxes of one class (the line through them meets ``h = 0`` at the horizon), scored by
+    a truncated quadratic loss of ``log(h / (r_c (v_b - v_h)))`` with every class's ratio set to the median
+    for that horizon; (3) iteratively reweighted Gauss-Newton on the horizon and the log ratios with
+    Tukey's biweight, so occluded boxes (too short, or bottom edge hidden) stop counting; (4) classes with
+    fewer than ``min_boxes`` usable boxes get ``prior height / camera height``, where the camera height is
+    estimated from the fitted classes that have a prior height.
+
+    Parameters
+    ----------
+    dataset : Dataset
+        All images must share one size.
+    priors : mapping of str to float, optional
+        Real class heights in metres, overriding or extending :data:`PRIOR_HEIGHTS_M`.
+    rng : numpy Generator, int or None
+        Randomness of the RANSAC sampling.
+    min_boxes : int
+        Usable boxes a class needs to be fitted rather than scaled from its prior.
+
+    Returns
+    -------
+    GroundModel
+
+    Raises
+    ------
+    DatasetError
+        Mixed image sizes, or no class with ``min_boxes`` usable boxes.
+    ValueError
+        A bad prior height or ``min_boxes < 2``.
+
+    References
+    ----------
+    Hoiem, Efros, Hebert, "Putting Objects in Perspective", CVPR 2006 / IJCV 2008.
+    Fischler, Bolles, "Random Sample Consensus", CACM 24(6), 1981.
+    """
+    # 1. check inputs
+    if min_boxes < 2:
+        raise ValueError(f"min_boxes must be >= 2, got {min_boxes}")
+    table = prior_heights(priors)
+    width, height = _one_image_size(dataset)
+    per_class = usable_boxes(dataset)
+    fitted_names = [name for name, (b, _) in per_class.items() if len(b) >= min_boxes]
+    if not fitted_names:
+        counts = ", ".join(f"{n} {len(b)}" for n, (b, _) in per_class.items())
+        raise DatasetError(
+            dataset.source or "<dataset>",
+            "annotations",
+            f"no class has {min_boxes} usable boxes (not crowd, not touching the image border) to fit the "
+            f"ground model from (usable: {counts})",
+        )
+    boxes = _Boxes(
+        bottom=np.concatenate([per_class[n][0] for n in fitted_names]),
+        height=np.concatenate([per_class[n][1] for n in fitted_names]),
+        cls=np.concatenate([np.full(len(per_class[n][0]), i) for i, n in enumerate(fitted_names)]),
+    )
+
+    # 2. RANSAC for a starting horizon
+    horizon = _ransac_horizon(boxes, len(fitted_names), height, np.random.default_rng(rng))
+
+    # 3. robust refinement
+    horizon, log_ratio, weights = _irls(boxes, len(fitted_names), horizon)
+    residual = _residuals(boxes, horizon, log_ratio)
+    classes: dict[str, ClassGround] = {}
+    for i, name in enumerate(fitted_names):
+        own = (boxes.cls == i) & np.isfinite(residual)
+        spread = 1.4826 * float(np.median(np.abs(residual[own] - np.median(residual[own]))))
+        classes[name] = ClassGround(
+            height_ratio=float(np.exp(log_ratio[i])),
+            spread=spread,
+            n_boxes=int(np.count_nonzero(weights[boxes.cls == i] > 0)),
+            source="fitted",
+        )
+
+    # 4. camera height from fitted classes with a prior, then prior classes
+    camera_height, camera_sd = _camera_height(classes, table)
+    if camera_height is not None:
+        for name, (bottom, _) in per_class.items():
+            prior = table.get(normalise_class_name(name))
+            if name in classes or prior is None:
+                continue
+            classes[name] = ClassGround(
+                height_ratio=prior / camera_height,
+                spread=math.hypot(PRIOR_LOG_SD, camera_sd),
+                n_boxes=len(bottom),
+                source="prior",
+            )
+    used_priors = {name: table[normalise_class_name(name)] for name in per_class if normalise_class_name(name) in table}
+    return GroundModel(
+        horizon_row=float(horizon),
+        classes={name: classes[name] for name in per_class if name in classes},
+        camera_height_m=camera_height,
+        image_width=width,
+        image_height=height,
+        prior_heights_m=used_priors,
+    )
+
+
+def _one_image_size(dataset: Dataset) -> tuple[int, int]:
+    sizes: dict[tuple[int, int], int] = {}
+    for scene in dataset.scenes:
+        sizes[(scene.width, scene.height)] = sizes.get((scene.width, scene.height), 0) + 1
+    if len(sizes) != 1:
+        found = ", ".join(f"{w}x{h} ({n} images)" for (w, h), n in sizes.items()) or "no images"
+        raise DatasetError(
+            dataset.source or "<dataset>",
+            "images",
+            f"the ground model needs images of one size (one camera); found {found}",
+        )
+    return next(iter(sizes))
+
+
+def _residuals(boxes: _Boxes, horizon: float | np.ndarray, log_ratio: np.ndarray) -> np.ndarray:
+    """``log h - log r_c - log(v_b - v_h)``; NaN where the bottom row is not below the horizon.
+
+    ``horizon`` may be a (K,) array of hypotheses with ``log_ratio`` (K, C): the result is then (K, N).
+    """
+    depth = boxes.bottom - np.asarray(horizon, dtype=np.float64)[..., None]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        log_depth = np.where(depth > 0.5, np.log(np.maximum(depth, 0.5)), np.nan)
+    return np.log(boxes.height) - log_ratio[..., boxes.cls] - log_depth
+
+
+def _ratio_for_horizon(boxes: _Boxes, n_classes: int, horizons: np.ndarray) -> np.ndarray:
+    """(K, C) median log ratio of each class for each horizon hypothesis (the ratio's robust estimate)."""
+    depth = boxes.bottom[None, :] - horizons[:, None]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        log_r = np.where(depth > 0.5, np.log(boxes.height) - np.log(np.maximum(depth, 0.5)), np.nan)
+    out = np.full((len(horizons), n_classes), np.nan)
+    for c in range(n_classes):
+        own = log_r[:, boxes.cls == c]
+        has = np.isfinite(own).any(axis=1)
+        out[has, c] = np.nanmedian(own[has], axis=1)
+    return out
+
+
+def _ransac_horizon(boxes: _Boxes, n_classes: int, image_height: int, rng: np.random.Generator) -> float:
+    hypotheses = []
+    index_by_class = [np.flatnonzero(boxes.cls == c) for c in range(n_classes)]
+    weights = np.array([len(ix) for ix in index_by_class], dtype=np.float64)
+    # Two boxes at nearly the same row give an ill-conditioned line: ask for a 5% row difference.
+    min_row_gap = 0.05 * image_height
+    for _ in range(20 * _RANSAC_HYPOTHESES):
+        if len(hypotheses) == _RANSAC_HYPOTHESES:
+            break
+        own = index_by_class[rng.choice(n_classes, p=weights / weights.sum())]
+        i, j = rng.choice(own, size=2, replace=False)
+        db = boxes.bottom[j] - boxes.bottom[i]
+        dh = boxes.height[j] - boxes.height[i]
+        if abs(db) < min_row_gap or dh * db <= 0:
+            continue
+        horizon = boxes.bottom[i] - boxes.height[i] * db / dh
+        # Horizons far outside the frame are nonsense for a camera that sees the road.
+        if -2 * image_height <= horizon < image_height:
+            hypotheses.append(horizon)
+    if not hypotheses:
+        # All boxes at one row or with heights falling toward the camera: fall back to the median
+        # horizon implied by a ratio equal across classes, which at least starts the refinement.
+        return float(np.median(boxes.bottom - 2.0 * boxes.height))
+    horizons = np.asarray(hypotheses)
+    log_ratio = _ratio_for_horizon(boxes, n_classes, horizons)
+    residual = _residuals(boxes, horizons, np.nan_to_num(log_ratio, nan=0.0))
+    cost = np.where(np.isfinite(residual), np.minimum(residual**2, _INLIER_LOG**2), _INLIER_LOG**2).sum(axis=1)
+    return float(horizons[np.argmin(cost)])
+
+
+def _irls(
+    boxes: _Boxes, n_classes: int, horizon: float, *, iterations: int = 50
+) -> tuple[float, np.ndarray, np.ndarray]:
+    """Tukey-weighted Gauss-Newton on (horizon, log ratios). Returns them and the final box weights."""
+    log_ratio = np.nan_to_num(_ratio_for_horizon(boxes, n_classes, np.array([horizon]))[0], nan=0.0)
+    weights = np.ones(len(boxes.bottom))
+    for _ in range(iterations):
+        residual = _residuals(boxes, horizon, log_ratio)
+        valid = np.isfinite(residual)
+        scale = max(1.4826 * float(np.median(np.abs(residual[valid]))), 1e-3)
+        u = np.where(valid, residual, np.inf) / (_TUKEY_C * scale)
+        weights = np.where(np.abs(u) < 1, (1 - u**2) ** 2, 0.0)
+        # Jacobian of the residual: -1 on its class's log ratio, 1 / (v_b - v_h) on the horizon.
+        jac = np.zeros((len(residual), n_classes + 1))
+        jac[np.arange(len(residual)), boxes.cls] = -1.0
+        jac[:, n_classes] = np.where(valid, 1.0 / np.maximum(boxes.bottom - horizon, 0.5), 0.0)
+        r = np.where(valid, residual, 0.0)
+        normal = jac.T @ (weights[:, None] * jac)
+        if np.linalg.matrix_rank(normal) < n_classes + 1:
+            break
+        step = np.linalg.solve(normal, -jac.T @ (weights * r))
+        # A step that would lift the horizon past the lowest supporting box is damped.
+        step *= min(1.0, 0.5 * float(np.min(boxes.bottom[weights > 0] - horizon)) / max(abs(step[-1]), 1e-12))
+        log_ratio = log_ratio + step[:n_classes]
+        horizon += float(step[-1])
+        if abs(step[-1]) < 1e-6 and np.max(np.abs(step[:n_classes])) < 1e-9:
+            break
+    return horizon, log_ratio, weights
+
+
+def _camera_height(classes: Mapping[str, ClassGround], table: Mapping[str, float]) -> tuple[float | None, float]:
+    """Log-mean of ``H_prior / r_c`` over fitted classes with a prior (weighted by boxes used), and its sd."""
+    logs, weights = [], []
+    for name, cls in classes.items():
+        prior = table.get(normalise_class_name(name))
+        if prior is not None and cls.n_boxes > 0:
+            logs.append(math.log(prior / cls.height_ratio))
+            weights.append(cls.n_boxes)
+    if not logs:
+        return None, 0.0
+    mean = float(np.average(logs, weights=weights))
+    sd = float(np.sqrt(np.average((np.asarray(logs) - mean) ** 2, weights=weights)))
+    return math.exp(mean), sd
+
+
+# --------------------------------------------------------------------------------------------------
+# distances
+
+
+def ground_distance(
+    bottom_row: float | np.ndarray,
+    ground: GroundModel,
+    *,
+    focal_px: float,
+    camera_height_m: float | None = None,
+) -> float | np.ndarray:
+    """Distance ``Z`` (metres, along the optical axis) of the ground point imaged at ``bottom_row``.
+
+    ``Z = f h_cam / (v_b - v_h)``.
+
+    Parameters
+    ----------
+    bottom_row : float or (N,) float ndarray
+        Image row(s), top-down; must lie below ``ground.horizon_row``.
+    ground : GroundModel
+    focal_px : float
+        Focal length in pixels (boxes alone cannot tell it).
+    camera_height_m : float, optional
+        Default: the model's estimate ``ground.camera_height_m``.
+
+    Raises
+    ------
+    ValueError
+        A row at or above the horizon, ``focal_px <= 0``, or no camera height.
+
+    References
+    ----------
+    Hartley, Zisserman, "Multiple View Geometry in Computer Vision", 2nd ed., 2004.
+    """
+    camera = _camera(ground, camera_height_m)
+    if not focal_px > 0:
+        raise ValueError(f"focal_px must be > 0, got {focal_px}")
+    depth = np.asarray(bottom_row, dtype=np.float64) - ground.horizon_row
+    if not np.all(depth > 0):
+        raise ValueError(f"bottom row(s) at or above the horizon row {ground.horizon_row:.1f} have no ground distance")
+    z = focal_px * camera / depth
+    return float(z) if z.ndim == 0 else z
+
+
+def lateral_offset(
+    col: float | np.ndarray,
+    bottom_row: float | np.ndarray,
+    ground: GroundModel,
+    *,
+    camera_height_m: float | None = None,
+) -> float | np.ndarray:
+    """Sideways position ``X`` (metres, right positive) of the ground point at image ``(bottom_row, col)``.
+
+    ``X = (u - c_x) Z / f = (u - c_x) h_cam / (v_b - v_h)`` with the principal point ``c_x`` assumed at
+    the image centre; the focal length cancels, so only the camera height is needed.
+
+    References
+    ----------
+    Hartley, Zisserman, "Multiple View Geometry in Computer Vision", 2nd ed., 2004.
+    """
+    camera = _camera(ground, camera_height_m)
+    depth = np.asarray(bottom_row, dtype=np.float64) - ground.horizon_row
+    if not np.all(depth > 0):
+        raise ValueError(f"bottom row(s) at or above the horizon row {ground.horizon_row:.1f} have no ground position")
+    x = (np.asarray(col, dtype=np.float64) - ground.image_width / 2) * camera / depth
+    return float(x) if x.ndim == 0 else x
+
+
+def _camera(ground: GroundModel, camera_height_m: float | None) -> float:
+    camera = ground.camera_height_m if camera_height_m is None else camera_height_m
+    if camera is None:
+        raise ValueError("camera height unknown: the ground model has no estimate; pass camera_height_m")
+    if not camera > 0:
+        raise ValueError(f"camera_height_m must be > 0, got {camera}")
+    return float(camera)
