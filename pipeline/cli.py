@@ -154,3 +154,40 @@ def stats(
             "[bold red]rare[/]" if r.rare else "",
         )
     _stdout().print(table)
+
+
+@app.command()
+@reports_errors
+def ground(
+    ctx: typer.Context,
+    dataset: Annotated[Path, typer.Argument(help="COCO detection JSON file.")],
+    images: ImagesOption = None,
+    as_json: Annotated[bool, typer.Option("--json", help="Print JSON instead of a table.")] = False,
+    plot: Annotated[
+        Path | None, typer.Option("--plot", help="Write a PNG of box height vs. bottom row with the fitted lines.")
+    ] = None,
+) -> None:
+    """Fit the ground-plane model from the labels: horizon row and each class's height / camera height.
+
+    Box height = (H / h_cam) x (bottom row - horizon row) for a level camera (Hoiem et al., 2006).
+
+    Example: rarefill ground seed_scenes/train.json --plot ground.png
+    """
+    from .dataset import load_dataset
+    from .geometry import fit_ground
+    from .plots import save_ground_plot
+
+    data = load_dataset(dataset, images, check_images=False)
+    model = fit_ground(data)
+    if plot is not None:
+        save_ground_plot(data, model, plot)
+    if as_json:
+        typer.echo(json.dumps(model.to_dict(), indent=2))
+        return
+    camera = "unknown" if model.camera_height_m is None else f"{model.camera_height_m:.2f} m (from prior heights)"
+    table = Table(title=f"{dataset}: horizon row {model.horizon_row:.1f}, camera height {camera}")
+    for column in ("category", "H / h_cam", "spread (log sd)", "boxes used", "source"):
+        table.add_column(column, justify="left" if column in ("category", "source") else "right")
+    for name, c in model.classes.items():
+        table.add_row(name, f"{c.height_ratio:.3f}", f"{c.spread:.3f}", str(c.n_boxes), c.source)
+    _stdout().print(table)

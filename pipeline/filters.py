@@ -89,6 +89,10 @@ class FilterLimits:
     min_hash_distance : int
         6. Least Hamming distance (of 64 bits) between the pHash of a new output and every accepted one:
         re-encoded or slightly noised copies differ by 0-4 bits, unrelated scenes by about 32.
+    min_present_probability : float
+        0.5. Least probability the verifier (trained on real crops) gives the wanted class in a new
+        object's box: at 0.5 the wanted class is more likely than all other classes and background
+        together. The verifier filter itself lives in :mod:`pipeline.judge`.
     """
 
     scale_k_sd: float = 2.5
@@ -98,13 +102,18 @@ class FilterLimits:
     max_objects: int = 12
     max_seam_ratio: float = 2.5
     min_hash_distance: int = 6
+    min_present_probability: float = 0.5
 
     def __post_init__(self) -> None:
         for item in fields(self):
             value = getattr(self, item.name)
             if not isinstance(value, (int, float)) or isinstance(value, bool) or not math.isfinite(value):
                 raise ValueError(f"FilterLimits.{item.name} must be a finite number, got {value!r}")
-        unit = {"min_surface_share": self.min_surface_share, "max_iou": self.max_iou}
+        unit = {
+            "min_surface_share": self.min_surface_share,
+            "max_iou": self.max_iou,
+            "min_present_probability": self.min_present_probability,
+        }
         for name, value in unit.items():
             if not 0 <= value <= 1:
                 raise ValueError(f"FilterLimits.{name} must be in [0, 1], got {value}")
@@ -401,7 +410,7 @@ class DuplicateIndex:
     """Hashes of accepted outputs, searched by Hamming distance (a linear scan: thousands per ms)."""
 
     def __init__(self) -> None:
-        self._hashes = np.zeros(0, dtype=np.uint64)
+        self._hashes = np.zeros(64, dtype=np.uint64)
         self._keys: list[Hashable] = []
 
     def __len__(self) -> int:
@@ -411,14 +420,17 @@ class DuplicateIndex:
         """Record an accepted output's hash under ``key`` (e.g. its file name)."""
         if not 0 <= image_hash < 2**64:
             raise ValueError(f"image_hash must be a 64-bit unsigned integer, got {image_hash}")
-        self._hashes = np.append(self._hashes, np.uint64(image_hash))
+        if len(self._keys) == len(self._hashes):
+            # Doubling keeps adding n hashes O(n) overall.
+            self._hashes = np.concatenate([self._hashes, np.zeros_like(self._hashes)])
+        self._hashes[len(self._keys)] = image_hash
         self._keys.append(key)
 
     def nearest(self, image_hash: int) -> tuple[int, Hashable] | None:
         """``(distance, key)`` of the closest recorded hash, None when the index is empty."""
         if not self._keys:
             return None
-        distances = np.bitwise_count(self._hashes ^ np.uint64(image_hash))
+        distances = np.bitwise_count(self._hashes[: len(self._keys)] ^ np.uint64(image_hash))
         best = int(np.argmin(distances))
         return int(distances[best]), self._keys[best]
 

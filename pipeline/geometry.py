@@ -32,7 +32,7 @@ from typing import Any, Literal
 import numpy as np
 
 from . import __version__
-from .dataset import Dataset
+from .dataset import Annotation, Dataset, Scene
 from .errors import DatasetError
 
 PRIOR_HEIGHTS_M: Mapping[str, tuple[float, str]] = {
@@ -256,18 +256,17 @@ def usable_boxes(dataset: Dataset) -> dict[str, tuple[np.ndarray, np.ndarray]]:
     rows: dict[str, tuple[list[float], list[float]]] = {name: ([], []) for name in names.values()}
     for scene in dataset.scenes:
         for ann in scene.annotations:
-            x, y, w, h = ann.bbox
-            truncated = (
-                x <= BORDER_PX
-                or y <= BORDER_PX
-                or x + w >= scene.width - BORDER_PX
-                or y + h >= scene.height - BORDER_PX
-            )
-            if ann.iscrowd or truncated:
-                continue
-            rows[names[ann.category_id]][0].append(y + h)
-            rows[names[ann.category_id]][1].append(h)
+            if is_usable(ann, scene):
+                rows[names[ann.category_id]][0].append(ann.bottom_row)
+                rows[names[ann.category_id]][1].append(ann.bbox[3])
     return {name: (np.asarray(b, dtype=np.float64), np.asarray(h, dtype=np.float64)) for name, (b, h) in rows.items()}
+
+
+def is_usable(ann: Annotation, scene: Scene) -> bool:
+    """False for a crowd region or a box within :data:`BORDER_PX` of an edge of its image."""
+    x, y, w, h = ann.bbox
+    inside = BORDER_PX < x and BORDER_PX < y and x + w < scene.width - BORDER_PX and y + h < scene.height - BORDER_PX
+    return inside and not ann.iscrowd
 
 
 def fit_ground(

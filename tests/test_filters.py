@@ -165,6 +165,7 @@ def test_verdict_is_falsy_on_rejection_and_json_able():
         {"min_hash_distance": 65},
         {"min_gap_m": float("nan")},
         {"max_seam_ratio": True},
+        {"min_present_probability": 2.0},
     ],
 )
 def test_filter_limits_are_checked(field):

@@ -8,8 +8,11 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from PIL import Image
+from typer.testing import CliRunner
 
-from pipeline.dataset import load_dataset, parse_dataset, to_coco
+from pipeline.cli import app
+from pipeline.dataset import load_dataset, parse_dataset, save_dataset, to_coco
 from pipeline.errors import DatasetError
 from pipeline.geometry import (
     PRIOR_HEIGHTS_M,
@@ -254,3 +257,42 @@ def test_seed_scenes_fit_matches_render_truth():
     car_heights = [a.extra["render_truth"]["height_m"] for a in dataset.annotations() if a.category_id == car_id]
     truth_ratio = float(np.mean(car_heights)) / camera
     assert ground.classes["car"].height_ratio == pytest.approx(truth_ratio, rel=0.05)
+
+
+# --------------------------------------------------------------------------------------------------
+# command line
+
+
+def seed_or_synthetic(tmp_path: Path) -> Path:
+    if SEED_TRAIN.exists():
+        return SEED_TRAIN
+    dataset, _ = pinhole_dataset(seed=8)
+    path = tmp_path / "synthetic.json"
+    save_dataset(dataset, path)
+    return path
+
+
+def test_cli_ground_prints_the_horizon_and_writes_json_and_plot(tmp_path):
+    path = seed_or_synthetic(tmp_path)
+    runner = CliRunner()
+    result = runner.invoke(app, ["ground", str(path)])
+    assert result.exit_code == 0, result.output
+    assert "horizon row" in result.output and "car" in result.output
+    result = runner.invoke(app, ["ground", str(path), "--json", "--plot", str(tmp_path / "plot.png")])
+    assert result.exit_code == 0, result.output
+    data = json.loads(result.output)
+    assert isinstance(data["horizon_row"], float)
+    assert {"height_ratio", "spread", "n_boxes", "source"} <= set(data["classes"]["car"])
+    with Image.open(tmp_path / "plot.png") as plot:
+        assert plot.format == "PNG" and plot.size[0] > 400
+
+
+def test_cli_ground_bad_file_exits_2(tmp_path):
+    runner = CliRunner()
+    result = runner.invoke(app, ["ground", str(tmp_path / "missing.json")])
+    assert result.exit_code == 2
+    assert "not found" in result.output
+    broken = tmp_path / "broken.json"
+    broken.write_text("{not json")
+    result = runner.invoke(app, ["ground", str(broken)])
+    assert result.exit_code == 2 and "malformed JSON" in result.output
