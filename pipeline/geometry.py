@@ -59,6 +59,10 @@ PRIOR_LOG_SD = 0.15
 """Spread (sd of log height) given to a class scaled from its prior height: Hoiem et al.'s car prior has
 sd 0.21 m on 1.59 m (0.13), rounded up because the prior is a class-wide guess, not this data's mean."""
 
+MIN_SPREAD = 0.02
+"""Floor of a fitted class's spread: box edges are labelled to about a pixel, 2% of a 50 px box, so a
+tighter band would reject boxes for their labelling noise."""
+
 BORDER_PX = 1.0
 """A box within this many pixels of an image edge is truncated by the frame and is not used for fitting."""
 
@@ -78,8 +82,8 @@ class ClassGround:
         ``H / h_cam``: the class's real height in units of the camera height.
     spread : float
         Robust standard deviation of ``log(h / expected)`` over the class's boxes (1.4826 x the median
-        absolute deviation); for a prior class, :data:`PRIOR_LOG_SD` combined with the disagreement of
-        the fitted classes' camera-height estimates.
+        absolute deviation), at least :data:`MIN_SPREAD`; for a prior class, :data:`PRIOR_LOG_SD`
+        combined with the disagreement of the fitted classes' camera-height estimates.
     n_boxes : int
         Boxes that carried the fit (inliers after robust reweighting); 0..n for a prior class.
     source : {"fitted", "prior"}
@@ -343,7 +347,8 @@ def fit_ground(
     classes: dict[str, ClassGround] = {}
     for i, name in enumerate(fitted_names):
         own = (boxes.cls == i) & np.isfinite(residual)
-        spread = 1.4826 * float(np.median(np.abs(residual[own] - np.median(residual[own]))))
+        mad = float(np.median(np.abs(residual[own] - np.median(residual[own]))))
+        spread = max(1.4826 * mad, MIN_SPREAD)
         classes[name] = ClassGround(
             height_ratio=float(np.exp(log_ratio[i])),
             spread=spread,
