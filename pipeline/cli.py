@@ -191,3 +191,96 @@ def ground(
     for name, c in model.classes.items():
         table.add_row(name, f"{c.height_ratio:.3f}", f"{c.spread:.3f}", str(c.n_boxes), c.source)
     _stdout().print(table)
+
+
+def _print_merge_summary(summary) -> None:
+    out = _stdout()
+    table = Table(title=f"{summary.out}: {summary.real_images} real + {summary.synthetic_selected} synthetic images")
+    for column in ("category", "real", "synthetic", "total", "cap", ""):
+        table.add_column(column, justify="left" if column in ("category", "") else "right")
+    for c in summary.classes:
+        cap = "-" if c.cap is None else str(c.cap)
+        table.add_row(c.name, str(c.real), str(c.synthetic), str(c.total), cap, "[bold red]rare[/]" if c.rare else "")
+    out.print(table)
+    wanted = "" if summary.synthetic_wanted is None else f" (wanted {summary.synthetic_wanted})"
+    used = f"used {summary.synthetic_selected} of {summary.synthetic_available} available synthetic images"
+    out.print(f"synthetic share {summary.share:.4f}: {used}{wanted}")
+    groups = ", ".join(f"{g} {s}/{a}" for g, (a, s) in summary.groups.items()) or "none"
+    out.print(f"by target class (used/available): {groups}")
+    out.print(
+        f"left out by the leakage guard: {summary.excluded['hash']} (same file hash), "
+        f"{summary.excluded['id+file_name']} (same id and file name)"
+    )
+    for message in summary.shortfalls:
+        out.print(f"[bold yellow]not met:[/] {message}")
+
+
+@app.command("merge")
+@reports_errors
+def merge_command(
+    ctx: typer.Context,
+    real: Annotated[Path, typer.Argument(metavar="REAL.json", help="COCO file of the real training split.")],
+    out: Annotated[Path, typer.Option("--out", help="Merged COCO file to write.")],
+    synthetic: Annotated[
+        list[Path], typer.Option("--synthetic", metavar="RUN_DIR", help="A run folder of `rarefill run` (repeat).")
+    ],
+    guard: Annotated[
+        list[Path] | None,
+        typer.Option("--guard", metavar="HELDOUT.json", help="A held-out split to protect (repeat; at least one)."),
+    ] = None,
+    real_images: Annotated[
+        Path | None, typer.Option("--real-images", help="Image folder of REAL.json (default: images/ beside it).")
+    ] = None,
+    synthetic_share: Annotated[
+        float | None, typer.Option("--synthetic-share", help="Fraction of merged images that are synthetic, [0, 1).")
+    ] = None,
+    rare_target: Annotated[
+        int | None, typer.Option("--rare-target", help="Add synthetic images until each rare class has N instances.")
+    ] = None,
+    cap: Annotated[
+        list[str] | None, typer.Option("--cap", metavar="CLASS=N", help="At most N synthetic instances (repeat).")
+    ] = None,
+    rare_below: Annotated[
+        int, typer.Option("--rare-below", help="Classes with fewer real instances than this are rare.")
+    ] = 50,
+    mapping: Annotated[
+        Path | None, typer.Option("--mapping", help='JSON {"their name": "our name"} for other vocabularies.')
+    ] = None,
+    images_mode: Annotated[
+        str,
+        typer.Option(
+            "--images-mode",
+            help="relative: file_name points at the original files; copy / link: into <out stem>_images/.",
+        ),
+    ] = "relative",
+    seed: Annotated[int, typer.Option("--seed", help="Seeds which synthetic images are chosen.")] = 0,
+    as_json: Annotated[bool, typer.Option("--json", help="Print the summary as JSON instead of a table.")] = False,
+) -> None:
+    """Mix real and synthetic images at a chosen ratio into one COCO file, never leaking held-out images.
+
+    All real images are kept. Synthetic images made from an image of a --guard split (same file hash,
+    or same id and file name) are always left out and counted. Give --synthetic-share or --rare-target.
+
+    Example: rarefill merge seed_scenes/train.json --synthetic outputs/more-tractors
+    --guard seed_scenes/val.json --guard seed_scenes/test.json --synthetic-share 0.3 --out merged/train.json
+    """
+    from .merge import merge, parse_caps
+
+    summary = merge(
+        real,
+        synthetic=synthetic,
+        guards=guard or [],
+        out=out,
+        real_images=real_images,
+        synthetic_share=synthetic_share,
+        rare_target=rare_target,
+        caps=parse_caps(cap or []),
+        rare_below=rare_below,
+        mapping=mapping,
+        images_mode=images_mode,
+        seed=seed,
+    )
+    if as_json:
+        typer.echo(json.dumps(summary.to_dict(), indent=2))
+        return
+    _print_merge_summary(summary)
