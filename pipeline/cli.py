@@ -284,3 +284,40 @@ def merge_command(
         typer.echo(json.dumps(summary.to_dict(), indent=2))
         return
     _print_merge_summary(summary)
+
+
+@app.command()
+@reports_errors
+def report(
+    ctx: typer.Context,
+    run_dir: Annotated[Path, typer.Argument(metavar="RUN_DIR", help="A run folder written by `rarefill run`.")],
+    real: Annotated[
+        Path | None,
+        typer.Option(
+            "--real",
+            help="The real COCO data set of the run: fit the ground model on it and count 'before' from it "
+            "(default: the run's kept real annotations).",
+        ),
+    ] = None,
+    real_images: Annotated[
+        Path | None, typer.Option("--real-images", help="Image folder of --real (links each output to its source).")
+    ] = None,
+    page_size: Annotated[int, typer.Option("--page-size", min=1, help="Thumbnails per gallery page.")] = 200,
+) -> None:
+    """Write RUN_DIR/report.html: funnel, plots, thumbnails of accepted and rejected candidates, provenance.
+
+    The page needs no network; open it in any browser. Assets go to RUN_DIR/report/.
+
+    Example: rarefill report outputs/more-tractors --real seed_scenes/train.json
+    """
+    from .dataset import load_dataset
+    from .errors import UsageError
+    from .report import write_report
+
+    if real_images is not None and real is None:
+        raise UsageError("--real-images needs --real (the data set whose images they are)")
+    data = load_dataset(real, real_images, check_images=False) if real is not None else None
+    result = write_report(run_dir, real=data, page_size=page_size)
+    f = result.funnel
+    _stdout().print(f"{f.accepted} accepted, {f.rejected} rejected of {f.attempted} candidates; {result.ground_note}")
+    _stdout().print(f"wrote {result.path} ({result.pages} page(s), {result.thumbnails_made} new thumbnails)")
