@@ -132,10 +132,14 @@ class FilterLimits:
 # geometric filters
 
 
-def scale(box: Sequence[float], category: str, ground: GroundModel, limits: FilterLimits) -> Verdict:
+def scale(
+    box: Sequence[float], category: str, ground: GroundModel, limits: FilterLimits, *, image_id: int | None = None
+) -> Verdict:
     """Is the box as tall as the ground model expects for ``category`` at its bottom row?
 
-    Value: ``|log(h / expected)| / spread`` (standard deviations); limit: ``limits.scale_k_sd``.
+    Value: ``|log(h / expected)| / sd`` in standard deviations, ``sd`` from
+    :meth:`~pipeline.geometry.GroundModel.log_sd` (the image's own horizon when ``image_id`` names a
+    fitted image); limit: ``limits.scale_k_sd``.
 
     References
     ----------
@@ -143,15 +147,16 @@ def scale(box: Sequence[float], category: str, ground: GroundModel, limits: Filt
     """
     _, y, _, h = _box(box)
     bottom = y + h
-    cls = ground.class_ground(category)
-    if not bottom > ground.horizon_row:
+    ground.class_ground(category)
+    horizon = ground.horizon_for(image_id)
+    if not bottom > horizon:
         return Verdict(
             "scale", False, None, limits.scale_k_sd,
-            f"bottom row {bottom:.1f} is at or above the horizon row {ground.horizon_row:.1f}: nothing stands there",
+            f"bottom row {bottom:.1f} is at or above the horizon row {horizon:.1f}: nothing stands there",
         )  # fmt: skip
-    expected = ground.expected_height(category, bottom).expected
+    expected = ground.expected_height(category, bottom, image_id=image_id).expected
     ratio = h / expected
-    sd = abs(math.log(ratio)) / max(cls.spread, 1e-6)
+    sd = abs(math.log(ratio)) / max(ground.log_sd(category, bottom, image_id=image_id), 1e-6)
     passed = sd <= limits.scale_k_sd
     reason = (
         f"height {h:.1f} px is {ratio:.2f}x the expected {expected:.1f} px at row {bottom:.0f} "
@@ -193,6 +198,7 @@ def footprint_gaps(
     *,
     focal_px: float,
     camera_height_m: float | None = None,
+    image_id: int | None = None,
 ) -> np.ndarray:
     """Ground-plane distance (metres) from the box's footprint to each other box's footprint.
 
@@ -202,6 +208,7 @@ def footprint_gaps(
     ``dx`` their lateral separation (0 when they overlap sideways) and ``dz`` the difference in distance.
     Object length along the road is not modelled; one object hidden right behind another is caught by
     the IoU filter instead. Other boxes whose bottom row is at or above the horizon get ``inf``.
+    ``image_id`` picks the image's own horizon (:meth:`~pipeline.geometry.GroundModel.horizon_for`).
 
     Returns
     -------
@@ -213,13 +220,14 @@ def footprint_gaps(
     if not len(o):
         return gaps
     bottoms = o[:, 1] + o[:, 3]
-    ok = bottoms > ground.horizon_row + 1e-9
-    z0 = ground_distance(y + h, ground, focal_px=focal_px, camera_height_m=camera_height_m)
-    left0, right0 = (lateral_offset(c, y + h, ground, camera_height_m=camera_height_m) for c in (x, x + w))
+    ok = bottoms > ground.horizon_for(image_id) + 1e-9
+    camera = {"camera_height_m": camera_height_m, "image_id": image_id}
+    z0 = ground_distance(y + h, ground, focal_px=focal_px, **camera)
+    left0, right0 = (lateral_offset(c, y + h, ground, **camera) for c in (x, x + w))
     if ok.any():
-        z = ground_distance(bottoms[ok], ground, focal_px=focal_px, camera_height_m=camera_height_m)
-        left = lateral_offset(o[ok, 0], bottoms[ok], ground, camera_height_m=camera_height_m)
-        right = lateral_offset(o[ok, 0] + o[ok, 2], bottoms[ok], ground, camera_height_m=camera_height_m)
+        z = ground_distance(bottoms[ok], ground, focal_px=focal_px, **camera)
+        left = lateral_offset(o[ok, 0], bottoms[ok], ground, **camera)
+        right = lateral_offset(o[ok, 0] + o[ok, 2], bottoms[ok], ground, **camera)
         dx = np.clip(np.maximum(left0, left) - np.minimum(right0, right), 0, None)
         gaps[ok] = np.hypot(dx, z - z0)
     return gaps
@@ -233,16 +241,17 @@ def gap(
     *,
     focal_px: float,
     camera_height_m: float | None = None,
+    image_id: int | None = None,
 ) -> Verdict:
     """Is the box's footprint at least ``limits.min_gap_m`` metres from every other footprint?
 
     See :func:`footprint_gaps`. A box at or above the horizon fails (it has no ground position).
     """
     _, y, _, h = _box(box)
-    if not y + h > ground.horizon_row:
+    if not y + h > ground.horizon_for(image_id):
         reason = "bottom row is at or above the horizon: no ground position"
         return Verdict("gap", False, None, limits.min_gap_m, reason)
-    gaps = footprint_gaps(box, others, ground, focal_px=focal_px, camera_height_m=camera_height_m)
+    gaps = footprint_gaps(box, others, ground, focal_px=focal_px, camera_height_m=camera_height_m, image_id=image_id)
     nearest = float(gaps.min()) if len(gaps) else math.inf
     passed = nearest >= limits.min_gap_m
     shown = "no other object on the ground" if not math.isfinite(nearest) else f"nearest object is {nearest:.1f} m away"
@@ -280,6 +289,7 @@ def check_geometry(
     *,
     focal_px: float | None = None,
     camera_height_m: float | None = None,
+    image_id: int | None = None,
 ) -> list[Verdict]:
     """Run the geometric filters (scale, surface, overlap, gap, objects) for one new box.
 
@@ -298,6 +308,8 @@ def check_geometry(
         Focal length for the gap filter; default :func:`focal_from_fov` of the model's image width.
     camera_height_m : float, optional
         Default: the model's estimate.
+    image_id : int, optional
+        The image's id: its own fitted horizon is used when the model has one (pitch varies per image).
 
     Returns
     -------
@@ -306,10 +318,10 @@ def check_geometry(
     """
     focal = focal_from_fov(ground.image_width) if focal_px is None else focal_px
     return [
-        scale(box, category, ground, limits),
+        scale(box, category, ground, limits, image_id=image_id),
         surface(box, surface_mask, limits),
         overlap(box, others, limits),
-        gap(box, others, ground, limits, focal_px=focal, camera_height_m=camera_height_m),
+        gap(box, others, ground, limits, focal_px=focal, camera_height_m=camera_height_m, image_id=image_id),
         objects(len(others) + 1, limits),
     ]
 
@@ -354,12 +366,15 @@ def seam_strength(image: np.ndarray, mask: np.ndarray, *, ring_px: int = 2) -> f
     float
         0 for an image without gradients.
     """
-    grey = _grey(image).astype(np.float32)
+    grey = _grey(image)
     if mask.shape != grey.shape:
         raise ValueError(f"mask shape {mask.shape} differs from the image's {grey.shape}")
     if ring_px < 1:
         raise ValueError(f"ring_px must be >= 1, got {ring_px}")
-    magnitude = cv2.magnitude(cv2.Sobel(grey, cv2.CV_32F, 1, 0, ksize=3), cv2.Sobel(grey, cv2.CV_32F, 0, 1, ksize=3))
+    # Integer Sobel responses are exact; float64 magnitudes and sums keep the verdict reproducible to the bit.
+    gx = cv2.Sobel(grey, cv2.CV_16S, 1, 0, ksize=3).astype(np.float64)
+    gy = cv2.Sobel(grey, cv2.CV_16S, 0, 1, ksize=3).astype(np.float64)
+    magnitude = np.sqrt(gx * gx + gy * gy)
     kernel = np.ones((2 * ring_px + 1, 2 * ring_px + 1), np.uint8)
     m = mask.astype(np.uint8)
     ring = (cv2.dilate(m, kernel) - cv2.erode(m, kernel)).astype(bool)

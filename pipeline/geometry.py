@@ -12,8 +12,11 @@ ratios; metres enter only through the prior height table (classes with too few b
 :func:`ground_distance`, which also needs the focal length (boxes alone cannot tell it: ``h``, ``w`` and
 ``v_b - v_h`` all scale with ``f``).
 
-The horizon is one row for the whole data set: a per-image horizon for a pitching camera is not
-modelled (the fit's residual spread absorbs small pitch changes).
+A camera that pitches a little moves the horizon from image to image. The fit gives every image an
+offset from the data set's horizon, shrunk toward zero like a random effect (its spread is estimated
+from the data, so a fixed camera gets offsets near zero). Filters use an image's own horizon when they
+know the image; for any other image the band widens by the horizon's spread (see
+:meth:`GroundModel.expected_height`).
 
 References
 ----------
@@ -121,6 +124,10 @@ class GroundModel:
         Size of the images the model was fitted on (pixels).
     prior_heights_m : mapping of str to float
         The prior heights used (for provenance).
+    image_horizons : mapping of int to float
+        Horizon row of each fitted image (by image id) that had boxes to tell it.
+    horizon_sd_px : float
+        Spread of the per-image horizons around ``horizon_row`` (pixels).
     """
 
     horizon_row: float
@@ -129,6 +136,14 @@ class GroundModel:
     image_width: int
     image_height: int
     prior_heights_m: Mapping[str, float] = field(default_factory=dict)
+    image_horizons: Mapping[int, float] = field(default_factory=dict)
+    horizon_sd_px: float = 0.0
+
+    def horizon_for(self, image_id: int | None = None) -> float:
+        """Horizon row of image ``image_id`` if the fit saw it, else the data set's ``horizon_row``."""
+        if image_id is None:
+            return self.horizon_row
+        return self.image_horizons.get(image_id, self.horizon_row)
 
     def class_ground(self, category_name: str) -> ClassGround:
         """The :class:`ClassGround` of a class; ``ValueError`` naming the known classes otherwise."""
@@ -141,10 +156,26 @@ class GroundModel:
                 "boxes or a prior height plus a fitted class to scale it"
             ) from None
 
-    def expected_height(self, category_name: str, bottom_row: float, *, k_sd: float = 2.5) -> HeightBand:
+    def log_sd(self, category_name: str, bottom_row: float, *, image_id: int | None = None) -> float:
+        """Standard deviation of ``log(box height)`` expected at ``bottom_row``.
+
+        The class's spread; for an image without its own horizon, combined with the horizon's spread
+        seen at that row: ``hypot(spread, horizon_sd_px / (bottom_row - horizon_row))``.
+        """
+        spread = self.class_ground(category_name).spread
+        if image_id is not None and image_id in self.image_horizons:
+            return spread
+        depth = float(bottom_row) - self.horizon_row
+        return math.hypot(spread, self.horizon_sd_px / depth) if depth > 0 else math.inf
+
+    def expected_height(
+        self, category_name: str, bottom_row: float, *, k_sd: float = 2.5, image_id: int | None = None
+    ) -> HeightBand:
         """Expected image height (px) of a ``category_name`` box whose lower edge is at ``bottom_row``.
 
-        The band is ``expected * exp(+-k_sd * spread)``: ``k_sd = 2.5`` keeps about 99% of a normal
+        ``expected = height_ratio * (bottom_row - horizon)`` with the image's own horizon when
+        ``image_id`` names a fitted image, else the data set's. The band is
+        ``expected * exp(+-k_sd * log_sd)`` (:meth:`log_sd`): ``k_sd = 2.5`` keeps about 99% of a normal
         log-height distribution, so a box outside it is implausibly scaled for the data set.
 
         Raises
@@ -159,13 +190,12 @@ class GroundModel:
         if not k_sd >= 0:
             raise ValueError(f"k_sd must be >= 0, got {k_sd}")
         cls = self.class_ground(category_name)
-        depth = float(bottom_row) - self.horizon_row
+        horizon = self.horizon_for(image_id)
+        depth = float(bottom_row) - horizon
         if not depth > 0:
-            raise ValueError(
-                f"bottom row {bottom_row:g} is at or above the horizon row {self.horizon_row:.1f}: no ground there"
-            )
+            raise ValueError(f"bottom row {bottom_row:g} is at or above the horizon row {horizon:.1f}: no ground there")
         expected = cls.height_ratio * depth
-        margin = math.exp(k_sd * cls.spread)
+        margin = math.exp(k_sd * self.log_sd(category_name, bottom_row, image_id=image_id))
         return HeightBand(expected, expected / margin, expected * margin)
 
     def to_dict(self) -> dict[str, Any]:
@@ -182,6 +212,8 @@ class GroundModel:
                 for name, c in self.classes.items()
             },
             "prior_heights_m": dict(self.prior_heights_m),
+            "horizon_sd_px": self.horizon_sd_px,
+            "image_horizons": {str(k): v for k, v in self.image_horizons.items()},
         }
 
     @classmethod
@@ -207,10 +239,12 @@ class GroundModel:
                 image_width=int(data["image_width"]),
                 image_height=int(data["image_height"]),
                 prior_heights_m={str(k): float(v) for k, v in data.get("prior_heights_m", {}).items()},
+                image_horizons={int(k): float(v) for k, v in data.get("image_horizons", {}).items()},
+                horizon_sd_px=float(data.get("horizon_sd_px", 0.0)),
             )
         except KeyError as exc:
             raise ValueError(f"ground model: required key {exc.args[0]!r} is missing") from None
-        except (TypeError, AttributeError) as exc:
+        except (TypeError, AttributeError, ValueError) as exc:
             raise ValueError(f"ground model: malformed value ({exc})") from None
 
 
@@ -243,18 +277,31 @@ def prior_heights(priors: Mapping[str, float] | None = None) -> dict[str, float]
 
 @dataclass(frozen=True)
 class _Boxes:
-    """Usable boxes as parallel arrays: bottom row, height (px) and class index."""
+    """Usable boxes as parallel arrays: bottom row, height (px), class index and image index."""
 
     bottom: np.ndarray
     height: np.ndarray
     cls: np.ndarray
+    image: np.ndarray
+
+
+@dataclass(frozen=True)
+class _Fit:
+    """Result of the robust refinement."""
+
+    horizon: float
+    log_ratio: np.ndarray
+    offsets: np.ndarray
+    horizon_sd: float
+    weights: np.ndarray
+    residual: np.ndarray
 
 
 def usable_boxes(dataset: Dataset) -> dict[str, tuple[np.ndarray, np.ndarray]]:
     """Boxes fit for the ground model, per class name: ``(bottom_rows, heights)`` float64 arrays.
 
-    Left out: ``iscrowd`` regions and boxes within :data:`BORDER_PX` of an image edge (truncated by the
-    frame, so their height or bottom row is not the object's).
+    Left out (see :func:`is_usable`): ``iscrowd`` regions and boxes within :data:`BORDER_PX` of an image
+    edge (truncated by the frame, so their height or bottom row is not the object's).
     """
     names = dataset.category_names()
     rows: dict[str, tuple[list[float], list[float]]] = {name: ([], []) for name in names.values()}
@@ -284,11 +331,13 @@ def fit_ground(
 
     Steps: (1) keep usable boxes (see :func:`usable_boxes`); (2) RANSAC over horizon hypotheses, each
     made from two boxes of one class (the line through them meets ``h = 0`` at the horizon), scored by
-    a truncated quadratic loss of ``log(h / (r_c (v_b - v_h)))`` with every class's ratio set to the median
-    for that horizon; (3) iteratively reweighted Gauss-Newton on the horizon and the log ratios with
-    Tukey's biweight, so occluded boxes (too short, or bottom edge hidden) stop counting; (4) classes with
-    fewer than ``min_boxes`` usable boxes get ``prior height / camera height``, where the camera height is
-    estimated from the fitted classes that have a prior height.
+    a truncated quadratic loss of ``log(h / (r_c (v_b - v_h)))`` with every class's ratio set to the
+    median for that horizon; (3) iteratively reweighted Gauss-Newton with Tukey's biweight on the
+    horizon, the log ratios and one horizon offset per image, so occluded or mislabelled boxes stop
+    counting; the offsets are shrunk toward zero by a normal prior whose spread is re-estimated each
+    round (expectation-maximisation for a random effect); (4) classes with fewer than ``min_boxes``
+    usable boxes get ``prior height / camera height``, where the camera height is the log-mean of
+    ``H_prior / r_c`` over the fitted classes with a prior height, weighted by boxes used.
 
     Parameters
     ----------
@@ -317,7 +366,7 @@ def fit_ground(
     Hoiem, Efros, Hebert, "Putting Objects in Perspective", CVPR 2006 / IJCV 2008.
     Fischler, Bolles, "Random Sample Consensus", CACM 24(6), 1981.
     """
-    # 1. check inputs
+    # 1. check inputs and collect usable boxes
     if min_boxes < 2:
         raise ValueError(f"min_boxes must be >= 2, got {min_boxes}")
     table = prior_heights(priors)
@@ -332,29 +381,25 @@ def fit_ground(
             f"no class has {min_boxes} usable boxes (not crowd, not touching the image border) to fit the "
             f"ground model from (usable: {counts})",
         )
-    boxes = _Boxes(
-        bottom=np.concatenate([per_class[n][0] for n in fitted_names]),
-        height=np.concatenate([per_class[n][1] for n in fitted_names]),
-        cls=np.concatenate([np.full(len(per_class[n][0]), i) for i, n in enumerate(fitted_names)]),
-    )
+    boxes, image_ids = _collect(dataset, fitted_names)
 
     # 2. RANSAC for a starting horizon
-    horizon = _ransac_horizon(boxes, len(fitted_names), height, np.random.default_rng(rng))
+    start = _ransac_horizon(boxes, len(fitted_names), height, np.random.default_rng(rng))
 
-    # 3. robust refinement
-    horizon, log_ratio, weights = _irls(boxes, len(fitted_names), horizon)
-    residual = _residuals(boxes, horizon, log_ratio)
+    # 3. robust refinement with per-image horizons
+    fit = _irls(boxes, len(fitted_names), len(image_ids), start, image_height=height)
     classes: dict[str, ClassGround] = {}
     for i, name in enumerate(fitted_names):
-        own = (boxes.cls == i) & np.isfinite(residual)
-        mad = float(np.median(np.abs(residual[own] - np.median(residual[own]))))
-        spread = max(1.4826 * mad, MIN_SPREAD)
+        own = (boxes.cls == i) & np.isfinite(fit.residual)
+        mad = float(np.median(np.abs(fit.residual[own] - np.median(fit.residual[own]))))
         classes[name] = ClassGround(
-            height_ratio=float(np.exp(log_ratio[i])),
-            spread=spread,
-            n_boxes=int(np.count_nonzero(weights[boxes.cls == i] > 0)),
+            height_ratio=float(np.exp(fit.log_ratio[i])),
+            spread=max(1.4826 * mad, MIN_SPREAD),
+            n_boxes=int(np.count_nonzero(fit.weights[boxes.cls == i] > 0)),
             source="fitted",
         )
+    supported = np.bincount(boxes.image[fit.weights > 0], minlength=len(image_ids)) > 0
+    image_horizons = {image_ids[i]: fit.horizon + float(fit.offsets[i]) for i in range(len(image_ids)) if supported[i]}
 
     # 4. camera height from fitted classes with a prior, then prior classes
     camera_height, camera_sd = _camera_height(classes, table)
@@ -371,13 +416,39 @@ def fit_ground(
             )
     used_priors = {name: table[normalise_class_name(name)] for name in per_class if normalise_class_name(name) in table}
     return GroundModel(
-        horizon_row=float(horizon),
+        horizon_row=fit.horizon,
         classes={name: classes[name] for name in per_class if name in classes},
         camera_height_m=camera_height,
         image_width=width,
         image_height=height,
         prior_heights_m=used_priors,
+        image_horizons=image_horizons,
+        horizon_sd_px=fit.horizon_sd,
     )
+
+
+def _collect(dataset: Dataset, names: list[str]) -> tuple[_Boxes, list[int]]:
+    """Usable boxes of the classes ``names`` as arrays, and the image id of each image index."""
+    class_index = {c.id: names.index(c.name) for c in dataset.categories if c.name in names}
+    image_ids: list[int] = []
+    bottom, heights, cls, image = [], [], [], []
+    for scene in dataset.scenes:
+        picked = [a for a in scene.annotations if a.category_id in class_index and is_usable(a, scene)]
+        if not picked:
+            continue
+        for ann in picked:
+            bottom.append(ann.bottom_row)
+            heights.append(ann.bbox[3])
+            cls.append(class_index[ann.category_id])
+            image.append(len(image_ids))
+        image_ids.append(scene.id)
+    boxes = _Boxes(
+        bottom=np.asarray(bottom, dtype=np.float64),
+        height=np.asarray(heights, dtype=np.float64),
+        cls=np.asarray(cls, dtype=np.int64),
+        image=np.asarray(image, dtype=np.int64),
+    )
+    return boxes, image_ids
 
 
 def _one_image_size(dataset: Dataset) -> tuple[int, int]:
@@ -397,9 +468,10 @@ def _one_image_size(dataset: Dataset) -> tuple[int, int]:
 def _residuals(boxes: _Boxes, horizon: float | np.ndarray, log_ratio: np.ndarray) -> np.ndarray:
     """``log h - log r_c - log(v_b - v_h)``; NaN where the bottom row is not below the horizon.
 
-    ``horizon`` may be a (K,) array of hypotheses with ``log_ratio`` (K, C): the result is then (K, N).
+    ``horizon`` is a scalar, an (N,) array (one horizon per box), or a (K, 1) array of hypotheses with
+    ``log_ratio`` (K, C): the result is then (K, N).
     """
-    depth = boxes.bottom - np.asarray(horizon, dtype=np.float64)[..., None]
+    depth = boxes.bottom - np.asarray(horizon, dtype=np.float64)
     with np.errstate(invalid="ignore", divide="ignore"):
         log_depth = np.where(depth > 0.5, np.log(np.maximum(depth, 0.5)), np.nan)
     return np.log(boxes.height) - log_ratio[..., boxes.cls] - log_depth
@@ -438,44 +510,121 @@ def _ransac_horizon(boxes: _Boxes, n_classes: int, image_height: int, rng: np.ra
         if -2 * image_height <= horizon < image_height:
             hypotheses.append(horizon)
     if not hypotheses:
-        # All boxes at one row or with heights falling toward the camera: fall back to the median
-        # horizon implied by a ratio equal across classes, which at least starts the refinement.
+        # All boxes at one row or with heights falling toward the camera: start from the horizon a
+        # common ratio of 0.5 would give; the refinement takes it from there.
         return float(np.median(boxes.bottom - 2.0 * boxes.height))
     horizons = np.asarray(hypotheses)
     log_ratio = _ratio_for_horizon(boxes, n_classes, horizons)
-    residual = _residuals(boxes, horizons, np.nan_to_num(log_ratio, nan=0.0))
+    residual = _residuals(boxes, horizons[:, None], np.nan_to_num(log_ratio, nan=0.0))
     cost = np.where(np.isfinite(residual), np.minimum(residual**2, _INLIER_LOG**2), _INLIER_LOG**2).sum(axis=1)
     return float(horizons[np.argmin(cost)])
 
 
 def _irls(
-    boxes: _Boxes, n_classes: int, horizon: float, *, iterations: int = 50
-) -> tuple[float, np.ndarray, np.ndarray]:
-    """Tukey-weighted Gauss-Newton on (horizon, log ratios). Returns them and the final box weights."""
+    boxes: _Boxes, n_classes: int, n_images: int, horizon: float, *, image_height: int, iterations: int = 60
+) -> _Fit:
+    """Tukey-weighted Gauss-Newton on (log ratios, horizon, per-image offsets) with a shrinkage prior.
+
+    Minimises ``sum_j w_j r_j^2 + s^2 sum_i o_i^2 / tau^2``: ``r_j`` the log residual of box j with its
+    image's horizon ``v_h + o_i``, ``s`` the robust residual scale, ``tau`` the spread of the offsets,
+    re-estimated each round as the root mean of ``o_i^2`` plus each offset's posterior variance. Each
+    offset touches only its image's boxes, so the offsets are eliminated in closed form (Schur
+    complement) and the cost grows linearly with the number of images.
+    """
     log_ratio = np.nan_to_num(_ratio_for_horizon(boxes, n_classes, np.array([horizon]))[0], nan=0.0)
-    weights = np.ones(len(boxes.bottom))
+    offsets = np.zeros(n_images)
+    tau = 0.02 * image_height
     for _ in range(iterations):
-        residual = _residuals(boxes, horizon, log_ratio)
-        valid = np.isfinite(residual)
-        scale = max(1.4826 * float(np.median(np.abs(residual[valid]))), 1e-3)
-        u = np.where(valid, residual, np.inf) / (_TUKEY_C * scale)
-        weights = np.where(np.abs(u) < 1, (1 - u**2) ** 2, 0.0)
-        # Jacobian of the residual: -1 on its class's log ratio, 1 / (v_b - v_h) on the horizon.
-        jac = np.zeros((len(residual), n_classes + 1))
-        jac[np.arange(len(residual)), boxes.cls] = -1.0
-        jac[:, n_classes] = np.where(valid, 1.0 / np.maximum(boxes.bottom - horizon, 0.5), 0.0)
-        r = np.where(valid, residual, 0.0)
-        normal = jac.T @ (weights[:, None] * jac)
-        if np.linalg.matrix_rank(normal) < n_classes + 1:
+        residual = _residuals(boxes, horizon + offsets[boxes.image], log_ratio)
+        scale = max(1.4826 * float(np.nanmedian(np.abs(residual))), 1e-3)
+        weights = _tukey(residual, scale)
+        system = _normal_system(boxes, n_classes, n_images, horizon, offsets, residual, weights, (scale / tau) ** 2)
+        if system is None:
             break
-        step = np.linalg.solve(normal, -jac.T @ (weights * r))
-        # A step that would lift the horizon past the lowest supporting box is damped.
-        step *= min(1.0, 0.5 * float(np.min(boxes.bottom[weights > 0] - horizon)) / max(abs(step[-1]), 1e-12))
-        log_ratio = log_ratio + step[:n_classes]
-        horizon += float(step[-1])
-        if abs(step[-1]) < 1e-6 and np.max(np.abs(step[:n_classes])) < 1e-9:
+        step_global, step_offsets, offset_var, _ = system
+        # A step that would lift a horizon past the boxes standing below it is damped.
+        old_depth = boxes.bottom - horizon - offsets[boxes.image]
+        lift = step_global[n_classes] + step_offsets[boxes.image]
+        risky = (weights > 0) & (lift > 0.5 * old_depth)
+        shrink = float(np.min(0.5 * old_depth[risky] / lift[risky])) if risky.any() else 1.0
+        log_ratio = log_ratio + shrink * step_global[:n_classes]
+        horizon += shrink * float(step_global[n_classes])
+        offsets = offsets + shrink * step_offsets
+        tau = float(np.clip(np.sqrt(np.mean(offsets**2 + scale**2 * offset_var)), 0.05, image_height / 4))
+        if shrink * max(np.max(np.abs(step_global)), np.max(np.abs(step_offsets), initial=0.0)) < 1e-7:
             break
-    return horizon, log_ratio, weights
+    residual = _residuals(boxes, horizon + offsets[boxes.image], log_ratio)
+    scale = max(1.4826 * float(np.nanmedian(np.abs(residual))), 1e-3)
+    weights = _tukey(residual, scale)
+    system = _normal_system(boxes, n_classes, n_images, horizon, offsets, residual, weights, (scale / tau) ** 2)
+    leverage = system[3] if system is not None else np.zeros(len(residual))
+    # Leave-one-out residuals: a box's own image offset partly absorbs its residual, which would make
+    # the spread too small for a new object in that image.
+    held_out = residual / np.maximum(1.0 - leverage, 1e-3)
+    return _Fit(float(horizon), log_ratio, offsets, tau, weights, held_out)
+
+
+def _tukey(residual: np.ndarray, scale: float) -> np.ndarray:
+    u = np.where(np.isfinite(residual), residual, np.inf) / (_TUKEY_C * scale)
+    return np.where(np.abs(u) < 1, (1 - u**2) ** 2, 0.0)
+
+
+def _normal_system(
+    boxes: _Boxes,
+    n_classes: int,
+    n_images: int,
+    horizon: float,
+    offsets: np.ndarray,
+    residual: np.ndarray,
+    weights: np.ndarray,
+    penalty: float,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray] | None:
+    """One Gauss-Newton step with the per-image offsets eliminated.
+
+    The residual's Jacobian is -1 on its class's log ratio and ``q = 1 / (v_b - v_h - o_i)`` on the horizon
+    and on its image's offset. Normal matrix ``[[A, B], [B^T, D]]`` with ``D`` diagonal; the global step
+    solves ``(A - B D^-1 B^T) x = -(g - B D^-1 g_o)``.
+
+    Returns
+    -------
+    (global step (C+1,), offset step (M,), offset posterior variance / s^2 (M,), leverage (N,)), or None
+    when the classes' and horizon's system is singular.
+    """
+    valid = np.isfinite(residual)
+    w = np.where(valid, weights, 0.0)
+    r = np.where(valid, residual, 0.0)
+    q = np.where(valid, 1.0 / np.maximum(boxes.bottom - horizon - offsets[boxes.image], 0.5), 0.0)
+    c, i, n_global = boxes.cls, boxes.image, n_classes + 1
+    h = n_classes
+    a = np.zeros((n_global, n_global))
+    a[np.arange(n_classes), np.arange(n_classes)] = np.bincount(c, w, n_classes)
+    a[:n_classes, h] = a[h, :n_classes] = -np.bincount(c, w * q, n_classes)
+    a[h, h] = np.sum(w * q * q)
+    b = np.zeros((n_global, n_images))
+    b[:n_classes] = -np.bincount(c * n_images + i, w * q, n_classes * n_images).reshape(n_classes, n_images)
+    b[h] = np.bincount(i, w * q * q, n_images)
+    d = np.bincount(i, w * q * q, n_images) + penalty
+    g = np.concatenate([-np.bincount(c, w * r, n_classes), [np.sum(w * q * r)]])
+    g_o = np.bincount(i, w * q * r, n_images) + offsets * penalty
+    y = b / d
+    schur = a - y @ b.T
+    if np.linalg.matrix_rank(schur) < n_global:
+        return None
+    cov_global = np.linalg.inv(schur)
+    step_global = -cov_global @ (g - y @ g_o)
+    step_offsets = -(g_o + b.T @ step_global) / d
+    x = -cov_global @ y
+    offset_var = 1.0 / d - np.einsum("ki,ki->i", y, x)
+    # Leverage w_j J_j N^-1 J_j^T of each box, from the blocks of N^-1.
+    quad = (
+        cov_global[c, c]
+        - 2 * q * cov_global[c, h]
+        + q * q * cov_global[h, h]
+        - 2 * q * x[c, i]
+        + 2 * q * q * x[h, i]
+        + q * q * offset_var[i]
+    )
+    return step_global, step_offsets, offset_var, w * quad
 
 
 def _camera_height(classes: Mapping[str, ClassGround], table: Mapping[str, float]) -> tuple[float | None, float]:
@@ -503,6 +652,7 @@ def ground_distance(
     *,
     focal_px: float,
     camera_height_m: float | None = None,
+    image_id: int | None = None,
 ) -> float | np.ndarray:
     """Distance ``Z`` (metres, along the optical axis) of the ground point imaged at ``bottom_row``.
 
@@ -511,12 +661,14 @@ def ground_distance(
     Parameters
     ----------
     bottom_row : float or (N,) float ndarray
-        Image row(s), top-down; must lie below ``ground.horizon_row``.
+        Image row(s), top-down; must lie below the horizon.
     ground : GroundModel
     focal_px : float
         Focal length in pixels (boxes alone cannot tell it).
     camera_height_m : float, optional
         Default: the model's estimate ``ground.camera_height_m``.
+    image_id : int, optional
+        Use this fitted image's own horizon (:meth:`GroundModel.horizon_for`).
 
     Raises
     ------
@@ -530,9 +682,10 @@ def ground_distance(
     camera = _camera(ground, camera_height_m)
     if not focal_px > 0:
         raise ValueError(f"focal_px must be > 0, got {focal_px}")
-    depth = np.asarray(bottom_row, dtype=np.float64) - ground.horizon_row
+    horizon = ground.horizon_for(image_id)
+    depth = np.asarray(bottom_row, dtype=np.float64) - horizon
     if not np.all(depth > 0):
-        raise ValueError(f"bottom row(s) at or above the horizon row {ground.horizon_row:.1f} have no ground distance")
+        raise ValueError(f"bottom row(s) at or above the horizon row {horizon:.1f} have no ground distance")
     z = focal_px * camera / depth
     return float(z) if z.ndim == 0 else z
 
@@ -543,20 +696,23 @@ def lateral_offset(
     ground: GroundModel,
     *,
     camera_height_m: float | None = None,
+    image_id: int | None = None,
 ) -> float | np.ndarray:
     """Sideways position ``X`` (metres, right positive) of the ground point at image ``(bottom_row, col)``.
 
     ``X = (u - c_x) Z / f = (u - c_x) h_cam / (v_b - v_h)`` with the principal point ``c_x`` assumed at
-    the image centre; the focal length cancels, so only the camera height is needed.
+    the image centre; the focal length cancels, so only the camera height is needed. ``image_id`` as in
+    :func:`ground_distance`.
 
     References
     ----------
     Hartley, Zisserman, "Multiple View Geometry in Computer Vision", 2nd ed., 2004.
     """
     camera = _camera(ground, camera_height_m)
-    depth = np.asarray(bottom_row, dtype=np.float64) - ground.horizon_row
+    horizon = ground.horizon_for(image_id)
+    depth = np.asarray(bottom_row, dtype=np.float64) - horizon
     if not np.all(depth > 0):
-        raise ValueError(f"bottom row(s) at or above the horizon row {ground.horizon_row:.1f} have no ground position")
+        raise ValueError(f"bottom row(s) at or above the horizon row {horizon:.1f} have no ground position")
     x = (np.asarray(col, dtype=np.float64) - ground.image_width / 2) * camera / depth
     return float(x) if x.ndim == 0 else x
 

@@ -38,7 +38,8 @@ class Placement:
     expected_height : float
         The ground model's height (px) at ``bottom_row``.
     height_sd : float
-        The drawn deviation ``z``: height = expected * exp(spread * z).
+        The drawn deviation ``z``: height = expected * exp(log_sd * z), ``log_sd`` from
+        :meth:`~pipeline.geometry.GroundModel.log_sd` (the class's spread in a fitted image).
     aspect_ratio : float
         Width / height drawn from the class's boxes.
     tries : int
@@ -141,8 +142,9 @@ def sample_box(
         return NoPlacement(f"image already holds {len(others)} objects (limit {limits.max_objects})", {"objects": 1})
     focal = filters.focal_from_fov(ground.image_width) if focal_px is None else focal_px
 
-    # 2. footprint rows where the class is tall enough
-    lowest_row = ground.horizon_row + min_height_px / cls.height_ratio
+    # 2. footprint rows where the class is tall enough (the scene's own horizon when the fit saw it)
+    horizon = ground.horizon_for(scene.id)
+    lowest_row = horizon + min_height_px / cls.height_ratio
     rows, cols = np.nonzero(surface.mask)
     low_enough = rows + 1.0 > lowest_row
     rows, cols = rows[low_enough], cols[low_enough]
@@ -157,8 +159,8 @@ def sample_box(
         bottom = max(float(rows[i]) + rng.random(), lowest_row)
         centre = float(cols[i]) + rng.random()
         z = _truncated_normal(rng, max_sd)
-        expected = cls.height_ratio * (bottom - ground.horizon_row)
-        h = expected * math.exp(cls.spread * z)
+        expected = cls.height_ratio * (bottom - horizon)
+        h = expected * math.exp(ground.log_sd(category, bottom, image_id=scene.id) * z)
         aspect = float(ratios[rng.integers(ratios.size)])
         w = h * aspect
         box = (centre - w / 2, bottom - h, w, h)
@@ -171,7 +173,7 @@ def sample_box(
                 for v in (
                     filters.surface(box, surface.mask, limits),
                     filters.overlap(box, others, limits),
-                    filters.gap(box, others, ground, limits, focal_px=focal),
+                    filters.gap(box, others, ground, limits, focal_px=focal, image_id=scene.id),
                 )
                 if not v
             ),

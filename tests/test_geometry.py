@@ -41,24 +41,28 @@ def pinhole_dataset(
     heights: dict[str, float] | None = None,
     per_image: dict[str, float] | None = None,
     images: int = 60,
+    horizon_sd: float = 0.0,
 ) -> tuple:
     """Boxes of objects on a flat ground seen by a level pinhole camera; a share made short (occluded).
 
     Pinhole camera: h = f H / Z and bottom row = horizon + f h_cam / Z (Hartley & Zisserman, Multiple
-    View Geometry, 2nd ed., 2004).
+    View Geometry, 2nd ed., 2004). ``horizon_sd`` moves each image's horizon (a pitching camera);
+    the third returned value maps image id to its horizon row.
     """
     rng = np.random.default_rng(seed)
     heights = heights or {"car": 1.6, "van": 2.2, "bus": 3.3, "tractor": 2.8, "works_trailer": 2.5}
     per_image = per_image or {"car": 4, "van": 2, "bus": 1, "tractor": 0.4, "works_trailer": 0.4}
     ids = {name: i + 1 for i, name in enumerate(NAMES)}
     image_entries, anns = [], []
+    horizons = {}
     for image_id in range(1, images + 1):
         image_entries.append({"id": image_id, "file_name": f"{image_id}.png", "width": width, "height": height})
+        horizons[image_id] = image_horizon = horizon + rng.normal(0, horizon_sd) if horizon_sd else horizon
         for name, mean_count in per_image.items():
             for _ in range(rng.poisson(mean_count)):
                 z = rng.uniform(6, 60)
                 real = heights[name] * math.exp(rng.normal(0, 0.05))
-                bottom = horizon + focal * camera / z
+                bottom = image_horizon + focal * camera / z
                 h = focal * real / z
                 w = 1.4 * h
                 if rng.random() < outliers:
@@ -77,12 +81,12 @@ def pinhole_dataset(
         "annotations": anns,
         "categories": [{"id": i, "name": n} for n, i in ids.items()],
     }
-    return parse_dataset(raw, Path("."), check_images=False), heights
+    return parse_dataset(raw, Path("."), check_images=False), heights, horizons
 
 
 def test_fit_recovers_horizon_and_ratios_with_20_percent_outliers():
     truth = {"camera": 1.5, "horizon": 90.0}
-    dataset, heights = pinhole_dataset(outliers=0.2, camera=truth["camera"], horizon=truth["horizon"])
+    dataset, heights, _ = pinhole_dataset(outliers=0.2, camera=truth["camera"], horizon=truth["horizon"])
     ground = fit_ground(dataset)
     assert abs(ground.horizon_row - truth["horizon"]) < 1.0
     for name, real in heights.items():
@@ -99,15 +103,49 @@ def test_fit_recovers_horizon_and_ratios_with_20_percent_outliers():
 def test_fit_horizon_outside_the_frame_and_other_camera():
     # With the horizon above the frame only objects shorter than the camera height fit in the image,
     # so the camera sits high (4 m, a bus or truck mount).
-    dataset, heights = pinhole_dataset(seed=3, horizon=-10.0, camera=4.0, focal=250.0, outliers=0.2)
+    dataset, heights, _ = pinhole_dataset(seed=3, horizon=-10.0, camera=4.0, focal=250.0, outliers=0.2)
     ground = fit_ground(dataset, rng=7)
     assert abs(ground.horizon_row - (-10.0)) < 1.5
     for name in ("car", "bus"):
         assert ground.classes[name].height_ratio == pytest.approx(heights[name] / 4.0, rel=0.05)
 
 
+def test_per_image_horizons_follow_a_pitching_camera():
+    dataset, heights, horizons = pinhole_dataset(seed=9, outliers=0.1, horizon_sd=3.0, images=120)
+    ground = fit_ground(dataset)
+    errors = np.array([ground.image_horizons[i] - horizons[i] for i in ground.image_horizons])
+    assert len(errors) > 100
+    assert np.sqrt(np.mean(errors**2)) < 1.5  # against a 3 px spread of the truth
+    assert ground.horizon_sd_px == pytest.approx(3.0, rel=0.3)
+    assert abs(ground.horizon_row - np.mean(list(horizons.values()))) < 1.0
+    assert ground.classes["car"].height_ratio == pytest.approx(heights["car"] / 1.5, rel=0.04)
+    # A fixed camera gets (nearly) no per-image horizon spread.
+    fixed, _, _ = pinhole_dataset(seed=9, outliers=0.1, images=120)
+    assert fit_ground(fixed).horizon_sd_px < 0.5
+
+
+def test_image_horizon_and_band_for_unknown_images():
+    ground = GroundModel(
+        horizon_row=90.0,
+        classes={"car": ClassGround(1.0, 0.05, 100, "fitted")},
+        camera_height_m=1.5,
+        image_width=384,
+        image_height=224,
+        image_horizons={7: 94.0},
+        horizon_sd_px=2.0,
+    )
+    assert ground.horizon_for(7) == 94.0 and ground.horizon_for(8) == 90.0 and ground.horizon_for() == 90.0
+    assert ground.expected_height("car", 134.0, image_id=7).expected == pytest.approx(40.0)
+    assert ground.log_sd("car", 134.0, image_id=7) == pytest.approx(0.05)
+    # Elsewhere the horizon's own spread widens the band: hypot(0.05, 2 / (134 - 90)).
+    band = ground.expected_height("car", 134.0)
+    assert band.expected == pytest.approx(44.0)
+    assert band.high / band.expected == pytest.approx(math.exp(2.5 * math.hypot(0.05, 2 / 44)))
+    assert ground_distance(134.0, ground, focal_px=300, image_id=7) == pytest.approx(300 * 1.5 / 40)
+
+
 def test_fit_is_deterministic_for_a_seed():
-    dataset, _ = pinhole_dataset(seed=1)
+    dataset, _, _ = pinhole_dataset(seed=1)
     assert fit_ground(dataset, rng=5) == fit_ground(dataset, rng=5)
 
 
@@ -116,7 +154,7 @@ def test_rare_class_falls_back_to_prior_scaled_by_estimated_camera_height():
     counts = {"car": 4, "van": 2, "bus": 1, "tractor": 0.05, "works_trailer": 0.0}
     # Real heights equal to the priors, so the camera height estimate is exact up to noise.
     heights = {n: PRIOR_HEIGHTS_M[n][0] for n in NAMES}
-    dataset, _ = pinhole_dataset(seed=2, outliers=0.0, camera=camera, heights=heights, per_image=counts)
+    dataset, _, _ = pinhole_dataset(seed=2, outliers=0.0, camera=camera, heights=heights, per_image=counts)
     ground = fit_ground(dataset)
     assert ground.camera_height_m == pytest.approx(camera, rel=0.03)
     tractor = ground.classes["tractor"]
@@ -128,7 +166,7 @@ def test_rare_class_falls_back_to_prior_scaled_by_estimated_camera_height():
 
 def test_priors_override_the_table_and_are_checked():
     counts = {"car": 4, "van": 2, "bus": 1, "tractor": 0.05, "works_trailer": 0.0}
-    dataset, _ = pinhole_dataset(seed=2, outliers=0.0, per_image=counts)
+    dataset, _, _ = pinhole_dataset(seed=2, outliers=0.0, per_image=counts)
     ground = fit_ground(dataset, priors={"Works Trailer": 3.0})
     assert ground.prior_heights_m["works_trailer"] == 3.0
     assert ground.classes["works_trailer"].height_ratio == pytest.approx(3.0 / ground.camera_height_m)
@@ -140,7 +178,7 @@ def test_priors_override_the_table_and_are_checked():
 
 def test_class_without_boxes_or_prior_is_absent_and_named_in_the_error():
     counts = {"car": 4, "van": 0.0, "bus": 0.0, "tractor": 0.0, "works_trailer": 0.0}
-    dataset, _ = pinhole_dataset(seed=4, outliers=0.0, per_image=counts)
+    dataset, _, _ = pinhole_dataset(seed=4, outliers=0.0, per_image=counts)
     raw = to_coco(dataset)
     for category in raw["categories"]:
         if category["name"] == "bus":
@@ -168,7 +206,7 @@ def test_fit_refuses_too_few_boxes_and_mixed_sizes():
 
 
 def test_border_and_crowd_boxes_are_not_used():
-    dataset, _ = pinhole_dataset(seed=5, outliers=0.0)
+    dataset, _, _ = pinhole_dataset(seed=5, outliers=0.0)
     baseline = fit_ground(dataset)
     raw = to_coco(dataset)
     # Absurd boxes that would wreck the fit if used: touching the border, or crowd regions.
@@ -224,7 +262,7 @@ def test_rows_at_or_above_the_horizon_are_errors():
 
 
 def test_to_dict_from_dict_round_trip_through_json():
-    dataset, _ = pinhole_dataset(seed=6)
+    dataset, _, _ = pinhole_dataset(seed=6)
     ground = fit_ground(dataset)
     data = json.loads(json.dumps(ground.to_dict()))
     assert data["format"] == "rarefill.ground/1"
@@ -257,6 +295,11 @@ def test_seed_scenes_fit_matches_render_truth():
     car_heights = [a.extra["render_truth"]["height_m"] for a in dataset.annotations() if a.category_id == car_id]
     truth_ratio = float(np.mean(car_heights)) / camera
     assert ground.classes["car"].height_ratio == pytest.approx(truth_ratio, rel=0.05)
+    # The camera pitches: each image's horizon is recovered far better than the 2.5 px they vary by.
+    by_id = {s.id: s.extra["render_truth"]["horizon_row"] for s in dataset.scenes}
+    errors = np.array([row - by_id[i] for i, row in ground.image_horizons.items()])
+    assert len(errors) == len(dataset.scenes)
+    assert np.sqrt(np.mean(errors**2)) < 1.5
 
 
 # --------------------------------------------------------------------------------------------------
@@ -266,7 +309,7 @@ def test_seed_scenes_fit_matches_render_truth():
 def seed_or_synthetic(tmp_path: Path) -> Path:
     if SEED_TRAIN.exists():
         return SEED_TRAIN
-    dataset, _ = pinhole_dataset(seed=8)
+    dataset, _, _ = pinhole_dataset(seed=8)
     path = tmp_path / "synthetic.json"
     save_dataset(dataset, path)
     return path

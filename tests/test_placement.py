@@ -123,6 +123,8 @@ def test_rare_classes_placed_in_seed_scenes_pass_the_geometric_filters():
                 continue
             placed += 1
             others = [a.bbox for a in scene.annotations]
-            verdicts = filters.check_geometry(result.box, category, others, ground, surface.mask, LIMITS)
+            verdicts = filters.check_geometry(
+                result.box, category, others, ground, surface.mask, LIMITS, image_id=scene.id
+            )
             assert all(verdicts), [v.reason for v in verdicts if not v]
     assert placed >= 40
