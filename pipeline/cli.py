@@ -193,6 +193,183 @@ def ground(
     _stdout().print(table)
 
 
+@app.command("render-demo")
+@reports_errors
+def render_demo(
+    ctx: typer.Context,
+    out_dir: Annotated[Path, typer.Argument(help="Folder for {train,val,test}.json and images/.")],
+    seed: Annotated[
+        int | None, typer.Option("--seed", help="Set seed (default: the seed of the committed seed_scenes/).")
+    ] = None,
+    train: Annotated[int, typer.Option("--train", min=0, help="Number of train images.")] = 150,
+    val: Annotated[int, typer.Option("--val", min=0, help="Number of val images.")] = 40,
+    test: Annotated[int, typer.Option("--test", min=0, help="Number of test images.")] = 60,
+) -> None:
+    """Render the demo seed scenes (rural roads, known camera); bit-identical for the same seed.
+
+    Example: rarefill render-demo seed_scenes
+    """
+    from .demo_world import DEFAULT_SEED, render_seed_set
+
+    written = render_seed_set(
+        out_dir, seed=DEFAULT_SEED if seed is None else seed, counts={"train": train, "val": val, "test": test}
+    )
+    for split, path in written.items():
+        _stdout().print(f"{split}: {path}")
+    _stdout().print(f"images and drivable masks: {out_dir / 'images'}")
+
+
+@app.command("fit")
+@reports_errors
+def fit_command(
+    ctx: typer.Context,
+    dataset: Annotated[Path, typer.Argument(help="COCO detection JSON file of the training split.")],
+    out: Annotated[Path, typer.Option("--out", help="Model folder to write; training resumes from its checkpoint.")],
+    images: ImagesOption = None,
+    minutes: Annotated[
+        float | None, typer.Option("--minutes", min=0.01, help="Train for this much wall time (this run).")
+    ] = None,
+    steps: Annotated[int | None, typer.Option("--steps", min=1, help="Train until this many steps in total.")] = None,
+    seed: Annotated[int, typer.Option("--seed", min=0, help="Seeds the initial weights and every batch.")] = 0,
+    batch_size: Annotated[int, typer.Option("--batch-size", min=1, help="Windows per training step.")] = 16,
+) -> None:
+    """Train the domain generator (inpainting diffusion model + object verifier) on CPU.
+
+    Example: rarefill fit seed_scenes/train.json --out models/default --minutes 40
+    """
+    import sys
+
+    from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
+
+    from .dataset import load_dataset
+    from .errors import UsageError
+    from .generator import fit
+
+    if (minutes is None) == (steps is None):
+        raise UsageError("give exactly one of --minutes and --steps")
+    data = load_dataset(dataset, images)
+    columns = (TextColumn("{task.description}"), BarColumn(), TextColumn("{task.fields[status]}"), TimeElapsedColumn())
+    with Progress(*columns, console=_stderr()) as bar:
+        tasks: dict[str, Any] = {}
+
+        def report(event: Any) -> None:
+            if event.phase not in tasks:
+                total = event.total if event.total is not None else minutes * 60.0
+                tasks[event.phase] = bar.add_task(event.phase, total=total, status="")
+            done = event.step if event.total is not None else event.elapsed_s
+            bar.update(tasks[event.phase], completed=done, status=f"step {event.step}  loss {event.loss:.4f}")
+
+        result = fit(
+            data,
+            out_dir=out,
+            steps=steps,
+            minutes=minutes,
+            seed=seed,
+            batch_size=batch_size,
+            progress=report,
+            command=["rarefill", *sys.argv[1:]],
+        )
+    resumed = f", resumed at step {result.resumed_from}" if result.resumed_from else ""
+    _stdout().print(
+        f"wrote {result.out_dir}: {result.steps_done} steps{resumed}, "
+        f"{result.seconds / 60:.1f} min, final loss {result.final_loss:.4f}"
+    )
+
+
+def _parse_shard(text: str) -> tuple[int, int]:
+    from .errors import UsageError
+
+    try:
+        index, count = (int(v) for v in text.split("/"))
+    except ValueError:
+        raise UsageError(f"--shard must look like i/N (e.g. 0/4), got {text!r}") from None
+    if count < 1 or not 0 <= index < count:
+        raise UsageError(f"--shard i/N needs 0 <= i < N, got {text!r}")
+    return index, count
+
+
+def _print_run_summary(summary) -> None:
+    out = _stdout()
+    out.print(f"accepted {summary.accepted} of {summary.wanted} wanted, after {summary.attempted} attempts")
+    if summary.rejections:
+        reasons = ", ".join(f"{name} {n}" for name, n in sorted(summary.rejections.items(), key=lambda kv: -kv[1]))
+        out.print(f"rejections by filter: {reasons}")
+    if summary.chunks_skipped:
+        out.print(f"resumed: {summary.chunks_skipped} chunk(s) were already done")
+    out.print(f"labels:   {summary.output / 'labels.json'}")
+    out.print(f"manifest: {summary.output / 'manifest.jsonl'}  (every candidate with its verdicts)")
+
+
+def _run_with_progress(recipe, *, workers: int, shard: tuple[int, int]):
+    from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
+
+    from .runner import run_recipe
+
+    columns = (TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn())
+    with Progress(*columns, console=_stderr(), transient=False) as bar:
+        task = bar.add_task("chunks", total=None)
+
+        def update(state) -> None:
+            top = ", ".join(f"{k} {v}" for k, v in state.rejections.most_common(3)) or "none"
+            bar.update(
+                task,
+                total=state.chunks_total,
+                completed=state.chunks_done,
+                description=f"accepted {state.accepted}/{state.attempted} attempted (rejected: {top})",
+            )
+
+        return run_recipe(recipe, workers=workers, shard=shard, progress=update)
+
+
+@app.command()
+@reports_errors
+def run(
+    ctx: typer.Context,
+    recipe_file: Annotated[Path, typer.Argument(metavar="RECIPE", help="Recipe TOML file (see recipes/).")],
+    out: Annotated[Path | None, typer.Option("--out", help="Write here instead of the recipe's output.")] = None,
+    limit: Annotated[
+        int | None, typer.Option("--limit", min=1, help="Cap each stage's wanted count (a quick trial).")
+    ] = None,
+    workers: Annotated[int, typer.Option("--workers", min=1, help="Worker processes (CPU cores to use).")] = 1,
+    shard: Annotated[
+        str, typer.Option("--shard", help="Run slice i of N of the plan, e.g. 0/4 (see the README for schedulers).")
+    ] = "0/1",
+) -> None:
+    """Make synthetic images from a recipe: place, generate, judge, write labels with provenance.
+
+    Output: labels.json (COCO), images/, manifest.jsonl (every candidate and its verdicts), rejects/.
+    A run that is stopped (even killed) continues where it stopped when started again the same way.
+
+    Example: rarefill run recipes/more-tractors.toml --limit 16
+    """
+    from .recipe import load_recipe
+
+    recipe = load_recipe(recipe_file)
+    if out is not None:
+        recipe = recipe.with_output(out)
+    if limit is not None:
+        recipe = recipe.with_limit(limit)
+    summary = _run_with_progress(recipe, workers=workers, shard=_parse_shard(shard))
+    _print_run_summary(summary)
+
+
+@app.command()
+@reports_errors
+def collect(
+    ctx: typer.Context,
+    shards: Annotated[list[Path], typer.Argument(help="The shard output folders (all N of one run).")],
+    out: Annotated[Path, typer.Option("--out", help="Folder for the combined run (new).")],
+) -> None:
+    """Combine the outputs of `rarefill run --shard i/N` into one labelled set, identical to a single run.
+
+    Example: rarefill collect outputs/part-0 outputs/part-1 --out outputs/whole
+    """
+    from .collect import collect as collect_shards
+
+    counts = collect_shards(shards, out)
+    _stdout().print(f"collected {counts['accepted']} images from {len(shards)} shards into {out / 'labels.json'}")
+
+
 def _print_merge_summary(summary) -> None:
     out = _stdout()
     table = Table(title=f"{summary.out}: {summary.real_images} real + {summary.synthetic_selected} synthetic images")

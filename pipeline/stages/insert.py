@@ -1,0 +1,130 @@
+"""Insert stage: add 1..k new objects of the target class where they can stand, and label what was drawn.
+
+Options (recipe ``[[stage]]`` keys):
+
+``objects_per_image``
+    An integer or ``[min, max]``: how many new objects one output gets (drawn uniformly).
+``mask_margin``
+    How far the inpainting mask reaches beyond the sampled box, as a share of its width (sides) and
+    height (top); the generator needs room to draw the object's outline and its contact with the ground.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+
+import numpy as np
+
+from ..dataset import Dataset
+from ..filters import FilterLimits
+from ..generator import InpaintRequest
+from ..placement import sample_box
+from ..plan import Job, derive_seed
+from ..recipe import StageSpec
+from ..refit import refit_box
+from ..surface import Surface
+from .base import Candidate, Draft, Failure, NewObject, StageContext
+
+
+def eligible(dataset: Dataset, spec: StageSpec, limits: FilterLimits) -> list[tuple[int, int]]:
+    """Scenes that can take the wanted number of new objects within the objects-per-image limit."""
+    least = spec.options["objects_per_image"][0]
+    return [
+        (i, -1)
+        for i, scene in enumerate(dataset.scenes)
+        if sum(not a.iscrowd for a in scene.annotations) + least <= limits.max_objects
+    ]
+
+
+def object_mask(box: Sequence[float], shape: tuple[int, int], margin: float) -> np.ndarray:
+    """The region the generator may repaint for an object in ``box``: the box grown by ``margin``.
+
+    Grown by ``margin`` x width on each side and ``margin`` x height on top, and by 2 px below only, so that
+    the object's footprint stays where the placement put it.
+    """
+    x, y, w, h = box
+    height, width = shape
+    c0 = max(0, int(np.floor(x - margin * w)))
+    c1 = min(width, int(np.ceil(x + w + margin * w)))
+    r0 = max(0, int(np.floor(y - margin * h)))
+    r1 = min(height, int(np.ceil(y + h + 2)))
+    mask = np.zeros(shape, dtype=bool)
+    mask[r0:r1, c0:c1] = True
+    return mask
+
+
+def mask_box(mask: np.ndarray) -> tuple[float, float, float, float]:
+    """The ``[x, y, w, h]`` bounding box of a non-empty boolean mask."""
+    rows = np.flatnonzero(mask.any(axis=1))
+    cols = np.flatnonzero(mask.any(axis=0))
+    return (float(cols[0]), float(rows[0]), float(cols[-1] + 1 - cols[0]), float(rows[-1] + 1 - rows[0]))
+
+
+def within_rows(surface: Surface, rows: tuple[float, float]) -> Surface:
+    """The part of ``surface`` whose rows lie in ``[rows[0], rows[1]]``."""
+    index = np.arange(surface.mask.shape[0])[:, None]
+    band = (index >= np.floor(rows[0])) & (index <= np.ceil(rows[1]))
+    return Surface(surface.mask & band, surface.estimated)
+
+
+def draft(job: Job, attempt: int, spec: StageSpec, ctx: StageContext) -> Draft | Failure:
+    """Place the new objects and ask the generator for each one's window."""
+    # 1. check inputs and pick the source scene of this attempt
+    scene_index, _ = job.sources[attempt]
+    scene = ctx.dataset.scenes[scene_index]
+    rng = np.random.default_rng(job.attempt_seed(attempt))
+    low, high = spec.options["objects_per_image"]
+    wanted = int(rng.integers(low, high + 1))
+
+    # 2. place the objects one after another, each apart from all earlier ones, where real objects stand
+    surface = within_rows(ctx.surface(scene), ctx.footprint_rows)
+    boxes = [a.bbox for a in scene.annotations if not a.iscrowd]
+    placed = []
+    for _ in range(wanted):
+        placement = sample_box(
+            scene, spec.target_class, ctx.ground, surface, rng, ctx.limits,
+            aspect_ratios=ctx.aspect_ratios, existing_boxes=boxes,
+        )  # fmt: skip
+        if not placement:
+            if len(placed) >= low:
+                break
+            return Failure("placement", placement.reason, {"failures": dict(placement.failures)})
+        placed.append(placement)
+        boxes.append(placement.box)
+
+    # 3. build one mask and one request per object
+    image = scene.load_rgb()
+    margin = spec.options["mask_margin"]
+    requests = []
+    for i, placement in enumerate(placed):
+        mask = object_mask(placement.box, image.shape[:2], margin)
+        seed = derive_seed(job.attempt_seed(attempt), "object", i)
+        requests.append(InpaintRequest(image, mask, mask_box(mask), spec.target_class, seed))
+    return Draft(spec, scene, image, tuple(requests), {"placements": tuple(placed)})
+
+
+def complete(draft_: Draft, frames: Sequence[np.ndarray], ctx: StageContext) -> Candidate | Failure:
+    """Compose the generated windows and re-fit each label to the object actually drawn."""
+    # 4. assemble the result: each frame changed only pixels inside its own (disjoint) mask
+    out = draft_.image.copy()
+    changed = np.zeros(out.shape[:2], dtype=bool)
+    for request, frame in zip(draft_.requests, frames, strict=True):
+        out[request.mask] = frame[request.mask]
+        changed |= request.mask
+
+    # 5. re-fit each label to the generated pixels, not the requested box
+    category_id = ctx.dataset.category_by_name(draft_.stage.target_class).id
+    new = []
+    for request, placement in zip(draft_.requests, draft_.state["placements"], strict=True):
+        box = refit_box(draft_.image, out, request.mask, placement.box)
+        if box is None:
+            return Failure("present", f"nothing was generated under the requested box {_rounded(placement.box)}")
+        extra = {"expected_height_px": round(placement.expected_height, 2), "height_sd": round(placement.height_sd, 3)}
+        new.append(NewObject(category_id, box, placement.box, extra))
+    kept = tuple(draft_.scene.annotations)
+    checked = tuple(-1 - i for i in range(len(new)))
+    return Candidate(out, draft_.scene, kept, tuple(new), changed, checked, details={"objects": len(new)})
+
+
+def _rounded(box: Sequence[float]) -> list[float]:
+    return [round(float(v), 1) for v in box]

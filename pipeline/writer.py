@@ -1,0 +1,170 @@
+"""Atomic, resumable run output.
+
+Layout of a run folder::
+
+    run.json         what the folder holds: recipe hash, plan fingerprint, shard, categories
+    chunks/NNNNNN.json   one committed chunk: every attempt of its jobs with verdicts, accepted outputs
+    images/          accepted images (PNG)
+    rejects/         thumbnails of rejected candidates (JPEG, half size)
+    labels.json      COCO: accepted images with the source's real annotations plus the new ones
+    manifest.jsonl   every candidate, accepted or not, with all verdicts, in plan order
+    run.log          wall-clock times (kept apart so that labels never depend on the clock)
+
+A chunk's images are written (atomically) before its chunk file; the chunk file is the commit. After a
+crash, committed chunks are skipped and uncommitted ones are redone, rewriting the same bytes.
+``labels.json`` and ``manifest.jsonl`` are assembled from the chunk files in plan order, so ids never
+depend on the order in which chunks finished.
+"""
+
+from __future__ import annotations
+
+import json
+import time
+from collections.abc import Iterable, Mapping, Sequence
+from pathlib import Path
+from typing import Any
+
+import cv2
+import numpy as np
+
+from .errors import RunError
+from .files import write_bytes_atomic, write_json_atomic
+
+RUN_FORMAT = "rarefill.run/1"
+
+
+def encode_png(image: np.ndarray) -> bytes:
+    """Lossless, deterministic PNG bytes of an ``(H, W, 3) uint8`` RGB image."""
+    ok, data = cv2.imencode(".png", np.ascontiguousarray(image[:, :, ::-1]), [cv2.IMWRITE_PNG_COMPRESSION, 6])
+    if not ok:
+        raise RunError("could not encode a PNG image")
+    return data.tobytes()
+
+
+def encode_thumbnail(image: np.ndarray) -> bytes:
+    """Half-size JPEG of an RGB image, for rejected candidates."""
+    small = cv2.resize(image, (max(1, image.shape[1] // 2), max(1, image.shape[0] // 2)), interpolation=cv2.INTER_AREA)
+    ok, data = cv2.imencode(".jpg", np.ascontiguousarray(small[:, :, ::-1]), [cv2.IMWRITE_JPEG_QUALITY, 85])
+    if not ok:
+        raise RunError("could not encode a JPEG thumbnail")
+    return data.tobytes()
+
+
+class RunFolder:
+    """One run's output folder: where images, rejects and chunk records go."""
+
+    def __init__(self, root: Path) -> None:
+        self.root = Path(root)
+
+    @classmethod
+    def claim(cls, root: Path, identity: Mapping[str, Any]) -> RunFolder:
+        """Open ``root`` for the run described by ``identity``: new, or an earlier start of the same run.
+
+        Raises
+        ------
+        RunError
+            The folder holds another run (other recipe, seed, counts or shard) or other files.
+        """
+        folder = cls(root)
+        folder._check_identity(dict(identity))
+        for sub in ("chunks", "images", "rejects"):
+            (folder.root / sub).mkdir(parents=True, exist_ok=True)
+            for stale in (folder.root / sub).glob(".*.tmp"):
+                stale.unlink(missing_ok=True)  # left by a process killed mid-write
+        for stale in folder.root.glob(".*.tmp"):
+            stale.unlink(missing_ok=True)
+        return folder
+
+    def identity(self) -> dict[str, Any]:
+        """The run.json of this folder."""
+        return json.loads((self.root / "run.json").read_text(encoding="utf-8"))
+
+    def _check_identity(self, identity: dict[str, Any]) -> None:
+        path = self.root / "run.json"
+        if path.exists():
+            try:
+                existing = json.loads(path.read_text(encoding="utf-8"))
+            except (OSError, json.JSONDecodeError) as exc:
+                raise RunError(f"{path}: unreadable ({exc})", hint="delete the output folder and run again") from None
+            if existing != identity:
+                keys = set(existing) | set(identity)
+                changed = sorted(k for k in keys if existing.get(k) != identity.get(k))
+                raise RunError(
+                    f"{self.root} holds another run (differs in: {', '.join(changed)})",
+                    hint="choose another output folder (--out), or delete this one to start over",
+                )
+        elif self.root.exists() and any(p for p in self.root.iterdir() if p.name != "run.log"):
+            raise RunError(
+                f"{self.root} exists and is not a rarefill run folder",
+                hint="choose an empty or new output folder (--out)",
+            )
+        else:
+            write_json_atomic(path, identity, indent=2)
+
+    def chunk_path(self, chunk: int) -> Path:
+        return self.root / "chunks" / f"{chunk:06d}.json"
+
+    def committed(self) -> set[int]:
+        """Chunks whose results are on disk."""
+        return {int(p.stem) for p in (self.root / "chunks").glob("*.json") if p.stem.isdigit()}
+
+    def write_image(self, name: str, image: np.ndarray) -> str:
+        """Write an accepted image; returns its path relative to the run folder."""
+        write_bytes_atomic(self.root / "images" / name, encode_png(image))
+        return f"images/{name}"
+
+    def write_reject(self, name: str, image: np.ndarray) -> str:
+        """Write a rejected candidate's thumbnail; returns its path relative to the run folder."""
+        write_bytes_atomic(self.root / "rejects" / name, encode_thumbnail(image))
+        return f"rejects/{name}"
+
+    def commit(self, chunk: int, jobs: Sequence[Mapping[str, Any]]) -> None:
+        """Commit a chunk's job records (written last, after every image it names)."""
+        write_json_atomic(self.chunk_path(chunk), {"chunk": chunk, "jobs": list(jobs)})
+
+    def log(self, message: str) -> None:
+        """Append a time-stamped line to run.log (never read back by rarefill)."""
+        stamp = time.strftime("%Y-%m-%dT%H:%M:%S", time.gmtime())
+        with open(self.root / "run.log", "a", encoding="utf-8") as handle:
+            handle.write(f"{stamp} {message}\n")
+
+
+def read_chunks(root: Path, chunks: Iterable[int]) -> list[dict]:
+    """The committed chunk records of ``chunks``, in the order given."""
+    records = []
+    for chunk in chunks:
+        path = Path(root) / "chunks" / f"{chunk:06d}.json"
+        try:
+            records.append(json.loads(path.read_text(encoding="utf-8")))
+        except FileNotFoundError:
+            raise RunError(f"{path}: chunk {chunk} is missing", hint="run the recipe again to finish it") from None
+        except json.JSONDecodeError as exc:
+            raise RunError(f"{path}: unreadable ({exc})") from None
+    return records
+
+
+def assemble(root: Path, chunks: Iterable[int], *, categories: list, info: Mapping[str, Any]) -> dict[str, int]:
+    """Write labels.json and manifest.jsonl from committed chunks, in the order given.
+
+    Image and annotation ids count from 1 in that order. Returns counts for the summary.
+    """
+    images: list[dict] = []
+    annotations: list[dict] = []
+    manifest: list[str] = []
+    attempted = 0
+    for record in read_chunks(root, chunks):
+        for job in record["jobs"]:
+            for attempt in job["attempts"]:
+                attempted += 1
+                manifest.append(json.dumps({"job": job["key"], **attempt}, ensure_ascii=False, allow_nan=False))
+            output = job.get("output")
+            if output is None:
+                continue
+            image_id = len(images) + 1
+            images.append({"id": image_id, **output["image"]})
+            for ann in output["annotations"]:
+                annotations.append({"id": len(annotations) + 1, "image_id": image_id, **ann})
+    labels = {"info": dict(info), "images": images, "annotations": annotations, "categories": categories}
+    write_json_atomic(Path(root) / "labels.json", labels)
+    write_bytes_atomic(Path(root) / "manifest.jsonl", ("\n".join(manifest) + "\n" if manifest else "").encode())
+    return {"attempted": attempted, "accepted": len(images), "annotations": len(annotations)}

@@ -1,0 +1,52 @@
+"""Small stand-ins for the generator and verifier: deterministic, fast, and honest about what they draw.
+
+The fake generator paints a solid block (a colour drawn from the request's seed) inside each request's
+mask, leaving a margin like the insert stage's, and leaves every pixel outside the mask untouched.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+
+import numpy as np
+
+from pipeline.generator import InpaintRequest
+
+
+class BlockGenerator:
+    """Generator protocol: ``classes``, ``inpaint``, ``info``."""
+
+    def __init__(self, classes: Sequence[str] = ("car", "van", "bus", "tractor", "works_trailer"), *, inset=0.1):
+        self.classes = tuple(classes)
+        self.inset = inset
+        self.calls: list[int] = []
+
+    def inpaint(self, requests: Sequence[InpaintRequest], *, steps: int, guidance: float) -> list[np.ndarray]:
+        self.calls.append(len(requests))
+        frames = []
+        for request in requests:
+            frame = request.image.copy()
+            x, y, w, h = request.box
+            rng = np.random.default_rng(request.seed)
+            colour = rng.integers(0, 256, size=3).astype(np.uint8)
+            colour[rng.integers(3)] = 255 - int(request.image[int(y), int(x)].mean()) // 4  # stand out
+            r0, r1 = int(round(y + self.inset * h)), int(round(y + h - 2))
+            c0, c1 = int(round(x + self.inset * w)), int(round(x + w - self.inset * w))
+            block = np.zeros_like(request.mask)
+            block[r0:r1, c0:c1] = True
+            frame[block & request.mask] = colour
+            frames.append(frame)
+        return frames
+
+    def info(self) -> dict:
+        return {"kind": "test-block", "classes": list(self.classes)}
+
+
+class AlwaysVerifier:
+    """Sees the wanted class with a fixed probability."""
+
+    def __init__(self, probability: float = 0.9) -> None:
+        self.probability = probability
+
+    def present_probability(self, image, box, label) -> float:
+        return self.probability
