@@ -418,12 +418,19 @@ def _esc(value: Any) -> str:
     return html.escape(str(value), quote=True)
 
 
-def _number(value: Any) -> str:
+def _number(value: Any, *, unlike: Any = None) -> str:
+    """``value`` to 4 significant digits, or more when 4 would print it equal to a different ``unlike``."""
     if isinstance(value, bool) or value is None:
         return "n/a" if value is None else str(value)
-    if isinstance(value, (int, float)):
-        return f"{value:.4g}"
-    return _esc(value)
+    if not isinstance(value, (int, float)):
+        return _esc(value)
+    digits = 4
+    # A rejected 0.10004 against a limit of 0.1 must not read "value 0.1, limit 0.1".
+    while isinstance(unlike, (int, float)) and value != unlike and digits < 12:
+        if f"{value:.{digits}g}" != f"{unlike:.{digits}g}":
+            break
+        digits += 1
+    return f"{value:.{digits}g}"
 
 
 def _pretty(obj: Any) -> str:
@@ -453,9 +460,11 @@ table.funnel tr.filter th { padding-left: 22px; font-weight: 400; }
 .bar { height: 12px; border-radius: 3px; background: #8da9c4; min-width: 1px; }
 .bar.ok { background: #3f9b5a; } .bar.bad { background: #d9826b; }
 td.barcell { width: 360px; }
-.plots { display: flex; flex-wrap: wrap; gap: 14px; align-items: flex-start; }
-.plots figure { margin: 0; flex: 0 1 auto; max-width: 100%; }
-.plots img { max-width: 100%; height: auto; display: block; border: 1px solid var(--line); border-radius: 4px; }
+.plots { display: grid; grid-template-columns: minmax(0, 3fr) minmax(0, 2fr); gap: 14px; align-items: start; }
+.plots figure { margin: 0; }
+.plots figure.wide { grid-column: 1 / -1; }
+.plots img { width: 100%; height: auto; display: block; border: 1px solid var(--line); border-radius: 4px; }
+.plots figure.wide img { width: auto; max-width: 100%; }
 .legend span { display: inline-block; margin-right: 18px; }
 .swatch { display: inline-block; width: 14px; height: 10px; border: 2px solid; margin-right: 5px;
   vertical-align: -1px; }
@@ -544,11 +553,14 @@ def _funnel_html(f: Funnel) -> str:
 
 def _plots_html(note: str, prefix: str) -> str:
     figures = [
-        ("scale.png", "Box height against bottom row, with the fitted ground lines; new instances as diamonds"),
-        ("counts.png", "Instances per class before and after the run"),
-        ("sizes.png", "Box size per class, real against new"),
+        ("scale.png", "", "Box height against bottom row, with the fitted ground lines; new instances as diamonds"),
+        ("counts.png", "", "Instances per class before and after the run"),
+        ("sizes.png", "wide", "Box size per class, real against new"),
     ]
-    items = "".join(f'<figure><img src="{prefix}{ASSETS}/{name}" alt="{_esc(alt)}"></figure>' for name, alt in figures)
+    items = "".join(
+        f'<figure class="{css}"><img src="{prefix}{ASSETS}/{name}" alt="{_esc(alt)}"></figure>'
+        for name, css, alt in figures
+    )
     return (
         f'<section id="plots"><h2>Plots</h2>\n<p class="note">{_esc(note)}.</p>\n'
         f'<div class="plots">{items}</div></section>'
@@ -608,7 +620,8 @@ def _accepted_card(
     source_text = f"source image {_esc(source['image_id'])}"
     if link is not None:
         source_text = f'<a href="{prefix}{_esc(link)}">{source_text}</a>'
-    new = [names[a.category_id] for a in scene.annotations if _is_synthetic(a, labels)]
+    new = Counter(names[a.category_id] for a in scene.annotations if _is_synthetic(a, labels))
+    new_text = ", ".join(_esc(name) if n == 1 else f"{_esc(name)} &times;{n}" for name, n in new.items())
     provenance = {
         KEY: record,
         "annotations": [
@@ -621,7 +634,7 @@ def _accepted_card(
         f'<a href="{prefix}images/{_esc(scene.file_name)}"><img src="{prefix}{_esc(relative)}" width="{width}" '
         f'height="{height}" loading="lazy" decoding="async" alt="{_esc(scene.file_name)}"></a>'
         f'<figcaption><span class="name">{_esc(scene.file_name)}</span><br>'
-        f'<span class="meta">{_esc(what)} &middot; {len(new)} new ({_esc(", ".join(new))}) &middot; '
+        f'<span class="meta">{_esc(what)} &middot; {new.total()} new ({new_text}) &middot; '
         f"{source_text}</span></figcaption>"
         f"<details><summary>provenance</summary><pre>{_pretty(provenance)}</pre></details></figure>"
     )
@@ -633,7 +646,8 @@ def _rejected_card(line: Mapping[str, Any], root: Path, prefix: str, index: int)
     for name in line["rejected_by"]:
         verdict = failing.get(name)
         if verdict is not None:
-            value_limit = f"value {_number(verdict.get('value'))}, limit {_number(verdict.get('limit'))}"
+            value, limit = verdict.get("value"), verdict.get("limit")
+            value_limit = f"value {_number(value, unlike=limit)}, limit {_number(limit)}"
             why = verdict.get("reason", "")
         else:
             value_limit, why = "no value", line.get("reason", "")

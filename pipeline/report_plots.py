@@ -13,6 +13,8 @@ from collections.abc import Mapping, Sequence
 import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
+from matplotlib.lines import Line2D
+from matplotlib.ticker import FormatStrFormatter, LogLocator, NullFormatter
 
 from .files import write_bytes_atomic
 from .geometry import GroundModel
@@ -73,59 +75,75 @@ def save_scale_plot(
     row for a level camera over a ground plane).
     """
     names = sorted(set(real) | set(new))
-    fig = _new_figure(7.2, 4.6, dpi)
+    fig = _new_figure(9.4, 4.8, dpi)
     ax = fig.add_subplot()
     rows_seen = [float(image_height)]
+    # One legend entry per class (dot and line together), one per class with new instances, the horizon.
+    handles: list[Line2D] = []
     for name in names:
         colour = _class_colour(names, name)
         boxes = real.get(name, np.empty((0, 4)))
         if len(boxes):
-            ax.scatter(
-                boxes[:, 1] + boxes[:, 3],
-                boxes[:, 3],
-                s=14,
-                color=colour,
-                alpha=0.6,
-                linewidths=0,
-                label=f"{name}: real ({len(boxes)})",
-                zorder=2.5,
-            )
+            ax.scatter(boxes[:, 1] + boxes[:, 3], boxes[:, 3], s=14, color=colour, alpha=0.6, linewidths=0, zorder=2.5)
             rows_seen.append(float((boxes[:, 1] + boxes[:, 3]).min()))
-        added = new.get(name, np.empty((0, 4)))
-        if len(added):
-            ax.scatter(
-                added[:, 1] + added[:, 3],
-                added[:, 3],
-                s=46,
-                marker="D",
-                color=colour,
-                edgecolors="black",
-                linewidths=0.8,
-                label=f"{name}: new ({len(added)})",
-                zorder=3,
-            )
-            rows_seen.append(float((added[:, 1] + added[:, 3]).min()))
         cls = ground.classes.get(name) if ground is not None else None
+        line_style = "none"
         if cls is not None:
             line_rows = np.linspace(ground.horizon_row, image_height, 50)
-            ax.plot(
-                line_rows,
-                cls.height_ratio * (line_rows - ground.horizon_row),
+            line_style = "-" if cls.source == "fitted" else "--"
+            ax.plot(line_rows, cls.height_ratio * (line_rows - ground.horizon_row), color=colour, linestyle=line_style)
+        line_text = f", line {cls.source}" if cls is not None else ", no line"
+        handles.append(
+            Line2D(
+                [],
+                [],
                 color=colour,
-                linestyle="-" if cls.source == "fitted" else "--",
-                label=f"{name}: ground line ({cls.source}, n {cls.n_boxes})",
+                marker="o",
+                markersize=4,
+                linestyle=line_style,
+                label=f"{name}: {len(boxes)} real{line_text}",
             )
+        )
+    for name in names:
+        added = new.get(name, np.empty((0, 4)))
+        if not len(added):
+            continue
+        colour = _class_colour(names, name)
+        ax.scatter(
+            added[:, 1] + added[:, 3],
+            added[:, 3],
+            s=46,
+            marker="D",
+            color=colour,
+            edgecolors="black",
+            linewidths=0.8,
+            zorder=3,
+        )
+        rows_seen.append(float((added[:, 1] + added[:, 3]).min()))
+        handles.append(
+            Line2D(
+                [],
+                [],
+                color=colour,
+                marker="D",
+                markeredgecolor="black",
+                linestyle="none",
+                label=f"{name}: {len(added)} new",
+            )
+        )
     if ground is not None:
-        ax.axvline(ground.horizon_row, color="black", linestyle=":", label=f"horizon row {ground.horizon_row:.1f}")
+        ax.axvline(ground.horizon_row, color="black", linestyle=":")
+        handles.append(Line2D([], [], color="black", linestyle=":", label=f"horizon row {ground.horizon_row:.1f}"))
         rows_seen.append(ground.horizon_row)
     ax.set_xlim(min(rows_seen) - 10, image_height + 5)
     ax.set_ylim(0, None)
     ax.set_xlabel("bottom row of the box (px, top-down)")
     ax.set_ylabel("box height (px)")
-    ax.set_title("Scale: box height vs. bottom row (dots real, diamonds new)" + (f"\n{note}" if note else ""))
+    ax.set_title(
+        "Scale: box height vs. bottom row (dots real, diamonds new)" + (f"\n{note}" if note else ""), fontsize=10
+    )
     ax.grid(alpha=0.3)
-    if ax.get_legend_handles_labels()[0]:
-        ax.legend(fontsize=8, loc="upper left")
+    fig.legend(handles=handles, fontsize=8, loc="outside right upper", frameon=False)
     _save(fig, path)
 
 
@@ -170,6 +188,10 @@ def save_size_histograms(real: Boxes, new: Boxes, path: str | os.PathLike[str], 
                 label=f"new ({sizes_new.size})",
             )
         ax.set_xscale("log")
+        # Plain numbers (20, 50, 100) read better than 2x10^1 on a short log axis.
+        ax.xaxis.set_major_locator(LogLocator(subs=(1.0, 2.0, 5.0)))
+        ax.xaxis.set_major_formatter(FormatStrFormatter("%g"))
+        ax.xaxis.set_minor_formatter(NullFormatter())
         ax.set_title(name, fontsize=10)
         ax.set_xlabel("sqrt(w h) (px)", fontsize=8)
         ax.tick_params(labelsize=7)

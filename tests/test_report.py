@@ -202,7 +202,9 @@ def write_run(root: Path, *, accepted: int = 3, n_sources: int = 4) -> dict:
                 "attempt": attempt,
                 "seed": 900 + attempt,
                 "source_image_id": 1,
-                "verdicts": [{"name": "seam", "passed": False, "value": 4.2, "limit": 2.5, "reason": "hard edge"}],
+                "verdicts": [
+                    {"name": "seam", "passed": False, "value": (4.2, 2.500012)[attempt], "limit": 2.5, "reason": "edge"}
+                ],
                 "accepted": False,
                 "rejected_by": ["seam"],
                 "reject": name,
@@ -337,7 +339,11 @@ def test_report_page_shows_funnel_thumbnails_rejections_and_provenance(run_dir):
         f"scale value {3.41 + i:.4g}, limit 2.5box height is {3.41 + i:.2f} sd from the ground line (limit 2.5)"
         for i in range(3)
     )
-    assert sum(f.startswith("seam value 4.2, limit 2.5") for f in page.filters) == 2
+    # a value just over its limit shows enough digits to differ from it
+    assert sorted(f for f in page.filters if f.startswith("seam")) == [
+        "seam value 2.50001, limit 2.5edge",
+        "seam value 4.2, limit 2.5edge",
+    ]
     assert [f for f in page.filters if f.startswith("placement")] == [
         "placement no valueno room on the surface for a tractor (tried 200 boxes)"
     ]
