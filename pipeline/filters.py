@@ -83,9 +83,11 @@ class FilterLimits:
         12. Most objects in one image after insertion: a rural road scene rarely shows more than about a
         dozen vehicles; busier scenes would train the detector on an unlikely scene.
     max_seam_ratio : float
-        2.5. Largest ratio of mean gradient magnitude on the blend-mask border ring to the image's mean
-        gradient magnitude. Measured on the demo scenes: rings around random boxes in real images reach
-        about 1.5-2; a hard pasted edge reaches 5 and more.
+        2.5. Largest ratio of mean gradient magnitude on the blend-mask border to that of its surroundings
+        (:func:`seam_strength`). Measured on the 190 train and val seed scenes with the insert stage's
+        masks around their 696 real objects: untouched images score a median 1.14 (99th percentile 2.35,
+        0.4% above 2.5); the same masks filled hard with another scene's pixels score a median 3.4 (79%
+        above 2.5), feathered with a 2.5 px Gaussian 1.4 (1% above).
     min_hash_distance : int
         6. Least Hamming distance (of 64 bits) between the pHash of a new output and every accepted one:
         re-encoded or slightly noised copies differ by 0-4 bits, unrelated scenes by about 32.
@@ -345,12 +347,19 @@ def _grey(image: np.ndarray) -> np.ndarray:
     return cv2.cvtColor(image, cv2.COLOR_RGB2GRAY) if image.ndim == 3 else image
 
 
-def seam_strength(image: np.ndarray, mask: np.ndarray, *, ring_px: int = 2) -> float:
-    """Gradient energy along the blend-mask border relative to the image's typical gradient.
+def seam_strength(image: np.ndarray, mask: np.ndarray, *, ring_px: int = 1, band_px: int = 6) -> float:
+    """Gradient energy along the blend-mask border relative to the gradients around it.
 
     ``mean |grad I|`` over the ring of pixels within ``ring_px`` of the mask border, divided by the mean
-    gradient magnitude over the whole image (3x3 Sobel on the greyscale image). A good blend looks like
-    the rest of the image there (ratio about 1); a hard pasted edge puts a strong step on the ring.
+    gradient magnitude over the band from ``ring_px`` to ``ring_px + band_px`` pixels outside the mask
+    (3x3 Sobel on the greyscale image). A good blend looks like its surroundings there (ratio about 1);
+    a hard pasted edge puts a step on the ring that the surroundings do not have. The band's mean is
+    floored at half the image's mean gradient, so flat surroundings (sky, clean asphalt) do not turn a
+    faint seam into a large ratio.
+
+    The surroundings, not the whole image, are the reference because objects stand among edges: on the
+    seed scenes, half of the untouched real objects' insert masks score above 2.3 against the whole
+    image's mean gradient (5 px ring), against its surroundings a median 1.14 (3 px ring).
 
     Parameters
     ----------
@@ -360,35 +369,40 @@ def seam_strength(image: np.ndarray, mask: np.ndarray, *, ring_px: int = 2) -> f
         The region that was generated or pasted.
     ring_px : int
         Half-width of the border ring in pixels.
+    band_px : int
+        Width of the reference band outside the ring in pixels.
 
     Returns
     -------
     float
-        0 for an image without gradients.
+        0 for an image without gradients or a mask without a border.
     """
     grey = _grey(image)
     if mask.shape != grey.shape:
         raise ValueError(f"mask shape {mask.shape} differs from the image's {grey.shape}")
-    if ring_px < 1:
-        raise ValueError(f"ring_px must be >= 1, got {ring_px}")
+    if ring_px < 1 or band_px < 1:
+        raise ValueError(f"ring_px and band_px must be >= 1, got {ring_px}, {band_px}")
     # Integer Sobel responses are exact; float64 magnitudes and sums keep the verdict reproducible to the bit.
     gx = cv2.Sobel(grey, cv2.CV_16S, 1, 0, ksize=3).astype(np.float64)
     gy = cv2.Sobel(grey, cv2.CV_16S, 0, 1, ksize=3).astype(np.float64)
     magnitude = np.sqrt(gx * gx + gy * gy)
-    kernel = np.ones((2 * ring_px + 1, 2 * ring_px + 1), np.uint8)
     m = mask.astype(np.uint8)
-    ring = (cv2.dilate(m, kernel) - cv2.erode(m, kernel)).astype(bool)
+    near = cv2.dilate(m, np.ones((2 * ring_px + 1, 2 * ring_px + 1), np.uint8))
+    ring = (near - cv2.erode(m, np.ones((2 * ring_px + 1, 2 * ring_px + 1), np.uint8))).astype(bool)
+    far = cv2.dilate(m, np.ones((2 * (ring_px + band_px) + 1,) * 2, np.uint8))
+    band = (far - near).astype(bool)
     typical = float(magnitude.mean())
     if not ring.any() or typical == 0:
         return 0.0
-    return float(magnitude[ring].mean()) / typical
+    reference = max(float(magnitude[band].mean()) if band.any() else 0.0, 0.5 * typical)
+    return float(magnitude[ring].mean()) / reference
 
 
 def seam(image: np.ndarray, mask: np.ndarray, limits: FilterLimits) -> Verdict:
     """Is the blend seam no stronger than ``limits.max_seam_ratio`` (see :func:`seam_strength`)?"""
     ratio = seam_strength(image, mask)
     passed = ratio <= limits.max_seam_ratio
-    reason = f"gradient on the blend border is {ratio:.2f}x the image's mean (limit {limits.max_seam_ratio:g})"
+    reason = f"gradient on the blend border is {ratio:.2f}x that around it (limit {limits.max_seam_ratio:g})"
     return Verdict("seam", passed, ratio, limits.max_seam_ratio, reason if passed else reason + ": visible seam")
 
 

@@ -245,3 +245,25 @@ def test_phash_separates_seed_scenes():
     # Different rendered scenes share sky and road layout yet are not near-duplicates.
     distances = [hamming(a, b) for i, a in enumerate(hashes) for b in hashes[i + 1 :]]
     assert min(distances) >= LIMITS.min_hash_distance
+
+
+@pytest.mark.skipif(not (SEED_SCENES / "train.json").exists(), reason="seed scenes not rendered yet")
+def test_seam_passes_untouched_seed_objects_and_flags_hard_pastes():
+    from pipeline.dataset import load_dataset
+
+    dataset = load_dataset(SEED_SCENES / "train.json")
+    images = [s.load_rgb() for s in dataset.scenes[:40]]
+    untouched, pasted = [], []
+    for k, (scene, image) in enumerate(zip(dataset.scenes[:40], images, strict=True)):
+        other = images[(k + 11) % len(images)]
+        for ann in scene.annotations:
+            # The insert stage's mask: the box grown by 12% on the sides and top, 2 px below.
+            x, y, w, h = ann.bbox
+            mask = np.zeros(image.shape[:2], dtype=bool)
+            mask[
+                max(0, int(y - 0.12 * h)) : int(math.ceil(y + h + 2)), max(0, int(x - 0.12 * w)) : int(x + w + 0.12 * w)
+            ] = True
+            untouched.append(bool(seam(image, mask, LIMITS)))
+            pasted.append(bool(seam(np.where(mask[..., None], other, image), mask, LIMITS)))
+    assert np.mean(untouched) >= 0.97
+    assert np.mean(pasted) <= 0.4
