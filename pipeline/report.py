@@ -27,6 +27,7 @@ from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
+from urllib.parse import quote
 
 import cv2
 import numpy as np
@@ -418,6 +419,11 @@ def _esc(value: Any) -> str:
     return html.escape(str(value), quote=True)
 
 
+def _url(relative: str) -> str:
+    """A relative file path as an attribute-safe URL (a ``#`` or ``?`` in a file name stays part of it)."""
+    return _esc(quote(relative, safe="/"))
+
+
 def _number(value: Any, *, unlike: Any = None) -> str:
     """``value`` to 4 significant digits, or more when 4 would print it equal to a different ``unlike``."""
     if isinstance(value, bool) or value is None:
@@ -619,7 +625,7 @@ def _accepted_card(
     link = sources.get(scene.id)
     source_text = f"source image {_esc(source['image_id'])}"
     if link is not None:
-        source_text = f'<a href="{prefix}{_esc(link)}">{source_text}</a>'
+        source_text = f'<a href="{prefix}{_url(link)}">{source_text}</a>'
     new = Counter(names[a.category_id] for a in scene.annotations if _is_synthetic(a, labels))
     new_text = ", ".join(_esc(name) if n == 1 else f"{_esc(name)} &times;{n}" for name, n in new.items())
     provenance = {
@@ -631,7 +637,7 @@ def _accepted_card(
     what = " ".join(str(v) for v in (stage.get("kind"), stage.get("class")) if v)
     return (
         '<figure class="card accepted">'
-        f'<a href="{prefix}images/{_esc(scene.file_name)}"><img src="{prefix}{_esc(relative)}" width="{width}" '
+        f'<a href="{prefix}{_url("images/" + scene.file_name)}"><img src="{prefix}{_url(relative)}" width="{width}" '
         f'height="{height}" loading="lazy" decoding="async" alt="{_esc(scene.file_name)}"></a>'
         f'<figcaption><span class="name">{_esc(scene.file_name)}</span><br>'
         f'<span class="meta">{_esc(what)} &middot; {new.total()} new ({new_text}) &middot; '
@@ -659,7 +665,7 @@ def _rejected_card(line: Mapping[str, Any], root: Path, prefix: str, index: int)
         path = root / line["reject"]
         width, height = _image_size(path, f"{root / 'manifest.jsonl'}: rejected candidate {index + 1}")
         picture = (
-            f'<a href="{prefix}{_esc(line["reject"])}"><img src="{prefix}{_esc(line["reject"])}" width="{width}" '
+            f'<a href="{prefix}{_url(line["reject"])}"><img src="{prefix}{_url(line["reject"])}" width="{width}" '
             f'height="{height}" loading="lazy" decoding="async" alt="{_esc(line["reject"])}"></a>'
         )
     else:

@@ -420,6 +420,32 @@ def test_real_data_set_fits_the_ground_model_and_links_sources(tmp_path):
     assert all((root / h).is_file() for h in sources)
 
 
+def test_run_without_accepted_images_still_reports(tmp_path):
+    root = tmp_path / "run"
+    write_run(root, accepted=0)
+    result = write_report(root)
+    assert (result.funnel.attempted, result.funnel.accepted, result.funnel.rejected_by) == (2, 0, {"seam": 2})
+    assert result.ground_note.startswith("no ground model: ")
+    page = _parse(result.path)
+    assert [img["src"] for img in page.images if img["src"].startswith("rejects/")] == [
+        "rejects/demo_s0-99999_a0.jpg",
+        "rejects/demo_s0-99999_a1.jpg",
+    ]
+
+
+def test_file_names_are_url_encoded(tmp_path):
+    root = tmp_path / "run"
+    write_run(root, accepted=1)
+    odd = "demo #1?.png"
+    (root / "images" / "demo_s0-00000.png").rename(root / "images" / odd)
+    for name in ("labels.json", "manifest.jsonl"):
+        (root / name).write_text((root / name).read_text().replace("demo_s0-00000.png", odd))
+    page = _parse(write_report(root).path)
+    assert "images/demo%20%231%3F.png" in page.links
+    for target in _local_targets(page):
+        assert (root / unquote(urlsplit(target).path)).is_file(), target
+
+
 def test_bad_run_folders_are_refused_with_file_and_reason(tmp_path, run_dir):
     with pytest.raises(RunError, match="labels.json: not found"):
         read_run(tmp_path / "nowhere")
