@@ -116,7 +116,7 @@ def _shadows(spec: SceneSpec, scale: int) -> np.ndarray:
         gx = item.params["x_m"] - light.sun_side * r * 0.8 + r * np.cos(t)
         gz = np.maximum(item.z_m + 0.6 * r * np.sin(t), 0.5)
         fill(mask, [Polygon(np.c_[cam.col(gx, gz), cam.row(0.0, gz)], (0, 0, 0))], 255, scale=scale, antialias=True)
-    soft = cv2.GaussianBlur(mask.astype(np.float32) / 255.0, (0, 0), 0.8 * scale)
+    soft = cv2.GaussianBlur(mask.astype(np.float32) / 255.0, (0, 0), 0.5 * scale)
     strength = {"sunny": 0.5, "overcast": 0.3, "dusk": 0.3}[light.kind]
     return 1.0 - strength * soft
 

@@ -7,7 +7,7 @@ alone; the whole set is bit-identical for the same seed and :data:`RENDERER_VERS
 from __future__ import annotations
 
 import os
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
@@ -55,7 +55,8 @@ def plan_split(split: str, n_images: int, rng: np.random.Generator) -> list[list
     return per_image
 
 
-def _png(array: np.ndarray) -> bytes:
+def encode_png(array: np.ndarray) -> bytes:
+    """PNG bytes (compression 9) of an RGB ``(H, W, 3)`` or single-channel ``(H, W)`` uint8 array."""
     if array.ndim == 3:
         array = cv2.cvtColor(array, cv2.COLOR_RGB2BGR)
     ok, data = cv2.imencode(".png", array, [cv2.IMWRITE_PNG_COMPRESSION, 9])
@@ -109,6 +110,30 @@ def coco_entries(
     return image, annotations
 
 
+def seed_set_plan(seed: int, counts: Mapping[str, int] | None = None) -> dict[str, list[list[str]]]:
+    """The classes of every image of every split with more than 0 images (see :func:`plan_split`)."""
+    counts = dict(DEFAULT_COUNTS if counts is None else counts)
+    unknown = set(counts) - set(SPLITS)
+    if unknown:
+        raise ValueError(f"counts has unknown splits {sorted(unknown)}; known: {SPLITS}")
+    if any(not isinstance(n, int) or isinstance(n, bool) or n < 0 for n in counts.values()):
+        raise ValueError(f"counts must be integers >= 0, got {counts}")
+    return {
+        split: plan_split(split, counts[split], np.random.default_rng([seed, SPLITS.index(split)]))
+        for split in SPLITS
+        if counts.get(split, 0) > 0
+    }
+
+
+def render_seed_image(
+    seed: int, split: str, index: int, categories: Sequence[str]
+) -> tuple[SceneSpec, RenderedScene, int]:
+    """Sample and render image ``index`` of ``split``: ``(spec, rendered, image seed)``."""
+    s = image_seed(seed, split, index)
+    spec = sample_scene(s, categories=categories)
+    return spec, render_scene(spec), s
+
+
 def render_seed_set(
     out_dir: str | os.PathLike[str], *, seed: int = DEFAULT_SEED, counts: Mapping[str, int] | None = None
 ) -> dict[str, Path]:
@@ -130,33 +155,26 @@ def render_seed_set(
     dict
         Split name to the JSON file written.
     """
-    counts = dict(DEFAULT_COUNTS if counts is None else counts)
-    unknown = set(counts) - set(SPLITS)
-    if unknown:
-        raise ValueError(f"counts has unknown splits {sorted(unknown)}; known: {SPLITS}")
-    if any(not isinstance(n, int) or n < 0 for n in counts.values()):
-        raise ValueError(f"counts must be integers >= 0, got {counts}")
     out = Path(out_dir)
     written: dict[str, Path] = {}
     categories = [{"id": i + 1, "name": name, "supercategory": "vehicle"} for i, name in enumerate(CATEGORIES)]
-    for split in SPLITS:
-        n = counts.get(split, 0)
-        if n == 0:
-            continue
-        plan = plan_split(split, n, np.random.default_rng([seed, SPLITS.index(split)]))
+    for split, plan in seed_set_plan(seed, counts).items():
         images, annotations = [], []
         for i, wanted in enumerate(plan):
             stem = f"{split}_{i + 1:04d}"
-            s = image_seed(seed, split, i)
-            spec = sample_scene(s, categories=wanted)
-            rendered = render_scene(spec)
-            write_bytes_atomic(out / "images" / f"{stem}.png", _png(rendered.image))
+            spec, rendered, s = render_seed_image(seed, split, i, wanted)
+            write_bytes_atomic(out / "images" / f"{stem}.png", encode_png(rendered.image))
             mask_name = f"surfaces/{stem}.png"
-            write_bytes_atomic(out / "images" / mask_name, _png(rendered.drivable.astype(np.uint8) * 255))
+            write_bytes_atomic(out / "images" / mask_name, encode_png(rendered.drivable.astype(np.uint8) * 255))
             image, anns = coco_entries(
-                spec, rendered, image_id=i + 1, first_ann_id=len(annotations) + 1,
-                file_name=f"{stem}.png", mask_name=mask_name, seed=s,
-            )  # fmt: skip
+                spec,
+                rendered,
+                image_id=i + 1,
+                first_ann_id=len(annotations) + 1,
+                file_name=f"{stem}.png",
+                mask_name=mask_name,
+                seed=s,
+            )
             images.append(image)
             annotations += anns
         coco = {

@@ -25,7 +25,8 @@ from .shapes import Face, Polygon
 def object_faces(obj: SceneObject, camera: Camera, lighting: Lighting) -> tuple[Face | None, Face]:
     """``(side, near)``: the receding side face (or ``None``) and the face nearest the camera.
 
-    The side face's ``s`` axis runs from the vehicle's rear to its front; the near face's ``s`` axis
+    The side face's ``s`` axis runs from the vehicle's rear to its front (for a car: from its near end);
+    the near face's ``s`` axis
     runs left to right on screen (for a side-on vehicle: rear to front).
     """
     if obj.view == "side":
@@ -40,7 +41,8 @@ def object_faces(obj: SceneObject, camera: Camera, lighting: Lighting) -> tuple[
         across_m=obj.width_m,
         along_m=obj.length_m,
         height_m=obj.height_m,
-        near_end_is_rear=obj.view == "rear",
+        # a car's end face carries its roof, so its side is drawn roof-first from the near end either way
+        near_end_is_rear=obj.view == "rear" or obj.category == "car",
     )
 
 
@@ -86,9 +88,9 @@ def _car_end(face: Face, obj: SceneObject, lamps_on: bool, front: bool) -> None:
     face.rect(w - 0.42, 0.0, w - 0.1, 0.36, st["tyre"])
     face.rect(0.2, 0.06, w - 0.2, 0.3, (22, 22, 24))
     face.round_rect(0.0, 0.2, w, belt + 0.02, 0.1, st["body"])
-    face.poly([(0.1, belt), (w - 0.1, belt), (w - 0.32, h), (0.32, h)], st["body"])
-    inset = 0.16 if front else 0.24
-    face.poly([(inset, belt + 0.04), (w - inset, belt + 0.04), (w - 0.38, h - 0.07), (0.38, h - 0.07)], st["glass"])
+    face.poly([(0.08, belt), (w - 0.08, belt), (w - 0.22, h), (0.22, h)], st["body"])
+    inset = 0.16 if front or st["hatch"] else 0.26
+    face.poly([(inset, belt + 0.04), (w - inset, belt + 0.04), (w - 0.3, h - 0.07), (0.3, h - 0.07)], st["glass"])
     face.rect(0.02, 0.2, w - 0.02, 0.34, st["trim"])
     face.rect(w / 2 - 0.26, 0.36, w / 2 + 0.26, 0.47, (232, 232, 226))
     if front:
@@ -103,15 +105,13 @@ def _car_end(face: Face, obj: SceneObject, lamps_on: bool, front: bool) -> None:
 def _car_side(face: Face, obj: SceneObject, lamps_on: bool) -> None:
     length, h, st = face.size_s, face.size_v, obj.style
     belt = 0.58 * h
-    tail = 0.0 if st.get("hatch") else 0.35
     face.poly([(0.0, 0.22), (length, 0.22), (length, belt - 0.1), (length - 0.2, belt), (0.0, belt)], st["body"])
-    roof_front, roof_rear = 0.6 * length, 0.22 + tail
-    face.poly([(tail, belt), (roof_rear, h), (roof_front, h), (0.78 * length, belt)], st["body"])
+    roof_front = 0.6 * length
+    face.poly([(0.0, belt), (0.0, h - 0.06), (0.1, h), (roof_front, h), (0.78 * length, belt)], st["body"])
     face.poly(
-        [(tail + 0.14, belt + 0.05), (roof_rear + 0.06, h - 0.07), (roof_front - 0.05, h - 0.07),
-         (0.76 * length - 0.12, belt + 0.05)],
+        [(0.14, belt + 0.05), (0.16, h - 0.07), (roof_front - 0.05, h - 0.07), (0.76 * length - 0.12, belt + 0.05)],
         st["glass"],
-    )  # fmt: skip
+    )
     face.rect(0.45 * length, belt, 0.45 * length + 0.1, h - 0.05, st["body"])
     face.rect(0.0, 0.22, length, 0.34, st["trim"])
     for cs in (0.78, length - 0.85):
@@ -143,14 +143,14 @@ def _van_end(face: Face, obj: SceneObject, lamps_on: bool, front: bool) -> None:
 def _van_side(face: Face, obj: SceneObject, lamps_on: bool) -> None:
     length, h, st = face.size_s, face.size_v, obj.style
     face.poly(
-        [(0.0, 0.24), (length, 0.24), (length, 0.5 * h), (length - 0.55, 0.62 * h), (length - 1.25, h), (0.0, h)],
+        [(0.0, 0.24), (length, 0.24), (length, 0.55 * h), (length - 0.15, 0.66 * h), (length - 0.6, h), (0.0, h)],
         st["body"],
     )
     face.poly(
-        [(length - 1.55, 0.6 * h), (length - 0.62, 0.6 * h), (length - 1.2, 0.92 * h), (length - 1.55, 0.92 * h)],
+        [(length - 1.45, 0.62 * h), (length - 0.22, 0.62 * h), (length - 0.6, 0.93 * h), (length - 1.45, 0.93 * h)],
         st["glass"],
     )
-    face.rect(length - 1.62, 0.3, length - 1.58, 0.92 * h, (70, 70, 72))
+    face.rect(length - 1.52, 0.3, length - 1.48, 0.93 * h, (70, 70, 72))
     face.rect(0.0, 0.24, length, 0.38, st["trim"])
     for cs in (0.95, length - 0.95):
         face.circle(cs, 0.36, 0.36, st["tyre"])
@@ -194,20 +194,31 @@ def _bus_side(face: Face, obj: SceneObject, lamps_on: bool) -> None:
 def _tractor_end(face: Face, obj: SceneObject, lamps_on: bool, front: bool) -> None:
     w, h, st = face.size_s, face.size_v, obj.style
     radius = st["rear_wheel_m"]
-    tyre_w = 0.5
-    face.rect(tyre_w, 0.35, w - tyre_w, 1.15, (62, 62, 64))
-    face.rect(w / 2 - 0.05, 0.45, w / 2 + 0.05, 0.95, (30, 30, 30))
-    face.rect(0.36, 1.05, w - 0.36, h - 0.1, st["body"])
-    face.rect(0.5, 1.32, w - 0.5, h - 0.24, st["glass"])
-    face.rect(w / 2 - 0.04, 1.32, w / 2 + 0.04, h - 0.24, (30, 30, 32))
-    face.rect(0.28, h - 0.16, w - 0.28, h, st["roof"])
+    tyre_w = 0.55
+    cab_glass = tuple(0.5 * g + 0.5 * c for g, c in zip(st["glass"], (150, 172, 188), strict=True))
+    # rear axle housing and three-point linkage between the big rear tyres
+    face.rect(tyre_w - 0.05, 0.55, w - tyre_w + 0.05, 1.15, st["body"])
+    face.rect(tyre_w + 0.1, 0.3, w - tyre_w - 0.1, 0.62, (58, 58, 60))
+    face.rect(w / 2 - 0.07, 0.42, w / 2 + 0.07, 0.6, (30, 30, 30))
+    face.rect(tyre_w + 0.15, 0.3, tyre_w + 0.25, 0.8, (35, 35, 35))
+    face.rect(w - tyre_w - 0.25, 0.3, w - tyre_w - 0.15, 0.8, (35, 35, 35))
+    # cab: mostly glass in a dark frame, under a roof
+    face.rect(0.42, 1.05, w - 0.42, h - 0.1, (32, 32, 34))
+    face.rect(0.5, 1.2, w - 0.5, h - 0.2, cab_glass)
+    face.rect(0.5, 1.2, w - 0.5, 1.32, (32, 32, 34))
+    face.rect(0.32, h - 0.17, w - 0.32, h, st["roof"])
     for s0 in (0.0, w - tyre_w):
-        face.round_rect(s0, 0.0, s0 + tyre_w, 2 * radius, 0.18, st["tyre"])
-        face.rect(s0 + 0.08, 0.15, s0 + tyre_w - 0.08, 2 * radius - 0.15, (40, 40, 42))
-        face.rect(s0 - 0.0, 2 * radius - 0.04, s0 + tyre_w, 2 * radius + 0.1, st["body"])
-    _lamp(face, 0.4, 1.12, 0.56, 1.26, (190, 25, 25), lamps_on)
-    _lamp(face, w - 0.56, 1.12, w - 0.4, 1.26, (190, 25, 25), lamps_on)
-    face.rect(0.36, h - 0.3, 0.5, h - 0.18, (245, 150, 20), emissive=lamps_on)
+        face.round_rect(s0, 0.0, s0 + tyre_w, 2 * radius, 0.2, st["tyre"])
+        for v in np.arange(0.12, 2 * radius - 0.1, 0.16):  # tread bars across the tyre
+            face.rect(s0 + 0.06, v, s0 + tyre_w - 0.06, v + 0.06, (58, 58, 58))
+        face.poly(
+            [(s0 - 0.0, 2 * radius - 0.15), (s0 + tyre_w, 2 * radius - 0.15), (s0 + tyre_w, 2 * radius + 0.12),
+             (s0 + 0.05, 2 * radius + 0.12)],
+            st["body"],
+        )  # fmt: skip
+    _lamp(face, 0.05, 2 * radius + 0.12, 0.3, 2 * radius + 0.24, (190, 25, 25), lamps_on)
+    _lamp(face, w - 0.3, 2 * radius + 0.12, w - 0.05, 2 * radius + 0.24, (190, 25, 25), lamps_on)
+    face.rect(0.34, h - 0.3, 0.48, h - 0.17, (245, 150, 20), emissive=lamps_on)
 
 
 def _tractor_side(face: Face, obj: SceneObject, lamps_on: bool) -> None:
@@ -216,9 +227,10 @@ def _tractor_side(face: Face, obj: SceneObject, lamps_on: bool) -> None:
     front = rear * st["front_wheel_ratio"]
     cab0, cab1 = rear - 0.55, rear + 0.75
     face.rect(0.0, 0.55, 0.4, 0.8, (55, 55, 58))  # rear linkage
-    face.rect(cab0, 1.0, cab1, h - 0.1, st["body"])
-    face.rect(cab0 + 0.1, 1.35, cab1 - 0.1, h - 0.24, st["glass"])
-    face.rect((cab0 + cab1) / 2 - 0.04, 1.35, (cab0 + cab1) / 2 + 0.04, h - 0.24, st["body"])
+    cab_glass = tuple(0.5 * g + 0.5 * c for g, c in zip(st["glass"], (150, 172, 188), strict=True))
+    face.rect(cab0, 1.0, cab1, h - 0.1, (32, 32, 34))
+    face.rect(cab0 + 0.08, 1.2, cab1 - 0.08, h - 0.2, cab_glass)
+    face.rect((cab0 + cab1) / 2 - 0.04, 1.2, (cab0 + cab1) / 2 + 0.04, h - 0.2, (32, 32, 34))
     face.rect(cab0 - 0.1, h - 0.16, cab1 + 0.12, h, st["roof"])
     face.rect(cab1 - 0.2, 0.5, length - 0.3, 0.95, (55, 55, 58))
     hood = min(1.55, 0.56 * h)
@@ -231,7 +243,8 @@ def _tractor_side(face: Face, obj: SceneObject, lamps_on: bool) -> None:
     face.circle(rear, rear, rear, st["tyre"])
     face.circle(rear, rear, 0.58 * rear, st["rim"])
     face.circle(rear, rear, 0.18 * rear, (40, 40, 40))
-    face.arc_band(rear, rear, rear + 0.02, rear + 0.14, 0.05, np.pi - 0.05, st["body"])
+    # the mudguard arc stops short of the rear so it stays inside the box (s >= 0)
+    face.arc_band(rear, rear, rear + 0.01, rear + 0.1, 0.55, np.pi - 0.55, st["body"])
     _lamp(face, 0.0, 1.0, 0.1, 1.15, (190, 25, 25), lamps_on)
 
 
