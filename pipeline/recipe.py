@@ -160,6 +160,18 @@ STAGE_OPTIONS: dict[str, dict[str, tuple[Callable[[Any], Any], Any]]] = {
         "objects_per_image": (_int_range(1, 8), (1, 1)),
         "mask_margin": (_number(0.0, 0.5), 0.12),
     },
+    "rebackground": {
+        "windows": (_integer(0, 32), 6),
+        "other_objects": (_one_of("keep", "remove"), "keep"),
+        "max_unlabelled_probability": (_number(0.0, 1.0), 0.5),
+    },
+    "restyle": {
+        "condition": (_one_of("fog", "rain", "snow", "dusk", "night"), None),
+        "visibility_m": (_number(10.0, 10000.0), 150.0),
+        "rain_mm_per_h": (_number(0.5, 300.0), 25.0),
+        "snow_intensity": (_number(0.0, 1.0), 0.5),
+        "keep_invisible_as_crowd": (_boolean, False),
+    },
 }
 STAGE_KINDS = tuple(STAGE_OPTIONS)
 
