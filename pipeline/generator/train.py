@@ -1,0 +1,389 @@
+"""Train the inpainting denoiser (and the object-present verifier) on a user's data set, on CPU.
+
+The finished folder is a diffusers-format model::
+
+    out_dir/
+        unet/                 UNet2DModel.save_pretrained (EMA weights, safetensors)
+        scheduler/            DDPMScheduler.save_pretrained (the training schedule)
+        rarefill_model.json   what made it: classes, window, data hash, command, seed, steps, versions
+        verifier.safetensors  the object-present classifier (see verifier.py) + verifier.json
+        checkpoint.pt         optimiser state for resuming (not needed to sample; keep out of git)
+"""
+
+from __future__ import annotations
+
+import copy
+import io
+import json
+import math
+import os
+import platform
+import shutil
+import time
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+
+import cv2
+import diffusers
+import numpy as np
+import torch
+
+from .. import __version__
+from ..dataset import Dataset
+from ..errors import ModelError
+from ..files import write_bytes_atomic, write_json_atomic
+from .examples import Examples, dataset_hash, load_examples
+from .model import (
+    FORMAT,
+    FORMAT_VERSION,
+    METADATA,
+    NULL_LABEL,
+    DenoiserConfig,
+    build_unet,
+    label_table,
+    training_scheduler,
+)
+from .progress import FitProgress
+from .request import BACKGROUND
+from .verifier import VERIFIER_JSON, fit_verifier, save_verifier
+from .windows import box_mask, context_window, crop_window, window_mask
+
+CHECKPOINT = "checkpoint.pt"
+
+
+@dataclass(frozen=True)
+class TrainSettings:
+    """Optimisation settings; the defaults are what trained the committed default model.
+
+    ``mask_weight``/``outside_weight``: loss weight inside and outside the mask (the model only has to
+    draw the masked part; the outside keeps some weight so the fill continues its surroundings).
+    """
+
+    learning_rate: float = 6e-4
+    warmup_steps: int = 100
+    ema_decay: float = 0.998
+    drop_label: float = 0.1
+    background_share: float = 0.25
+    mask_weight: float = 1.0
+    outside_weight: float = 0.1
+    checkpoint_every: int = 200
+    verifier_steps: int = 1500
+    use_bf16: bool = True
+
+
+@dataclass(frozen=True)
+class FitResult:
+    """What :func:`fit` did. ``steps_done`` counts all steps, including those of earlier (resumed) runs."""
+
+    out_dir: Path
+    steps_done: int
+    seconds: float
+    final_loss: float
+    resumed_from: int
+
+
+# --------------------------------------------------------------------------------------------------
+# batches
+
+
+def make_batch(
+    examples: Examples,
+    labels: Sequence[str],
+    rng: np.random.Generator,
+    *,
+    batch_size: int,
+    window: int,
+    background_share: float,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """One training batch of windows.
+
+    Returns
+    -------
+    images : (B, 3, S, S) float32 ndarray in [-1, 1]
+    masks : (B, 1, S, S) float32 ndarray of 0/1
+    label_ids : (B,) int64 ndarray
+        Index into ``labels`` (before the classifier-free-guidance drop).
+    """
+    images = np.empty((batch_size, 3, window, window), np.float32)
+    masks = np.empty((batch_size, 1, window, window), np.float32)
+    label_ids = np.empty(batch_size, np.int64)
+    for i in range(batch_size):
+        if rng.random() < background_share:
+            scene, box = examples.sample_background_box(rng)
+            label = BACKGROUND
+        else:
+            ref = examples.sample_object(rng)
+            scene, box, label = ref.scene, ref.box, ref.label
+        image = examples.images[scene]
+        x, y, w, h = box
+        # Jitter where the window sits and how much context it holds: sampling centres it exactly
+        # with scale 2, but a little variety teaches the model not to rely on that.
+        side = max(w, h)
+        centre_x = x + w / 2 + rng.uniform(-0.08, 0.08) * side
+        centre_y = y + h / 2 + rng.uniform(-0.08, 0.08) * side
+        scale = rng.uniform(1.8, 2.3)
+        win = context_window((centre_x - w / 2, centre_y - h / 2, w, h), image.shape[:2], scale=scale)
+        win = _cover(win, box, image.shape[:2])
+        mask = box_mask(image.shape[:2], box, dilate_px=1.0 + 0.04 * side)
+        crop = crop_window(image, win, window)
+        crop_mask = window_mask(mask, win, window)
+        if rng.random() < 0.5:
+            crop, crop_mask = crop[:, ::-1], crop_mask[:, ::-1]
+        images[i] = crop.transpose(2, 0, 1).astype(np.float32) / 127.5 - 1.0
+        masks[i, 0] = crop_mask
+        label_ids[i] = labels.index(label)
+    return images, masks, label_ids
+
+
+def _cover(win, box, image_hw):
+    # The jittered window must still contain the whole box; fall back to the centred window if not.
+    x, y, w, h = box
+    if win.x0 <= x and win.y0 <= y and x + w <= win.x0 + win.size and y + h <= win.y0 + win.size:
+        return win
+    return context_window(box, image_hw)
+
+
+# --------------------------------------------------------------------------------------------------
+# training
+
+
+def fit(
+    dataset: Dataset,
+    *,
+    out_dir: str | os.PathLike[str],
+    steps: int | None = None,
+    minutes: float | None = None,
+    seed: int = 0,
+    batch_size: int = 16,
+    progress: Callable[[FitProgress], None] | None = None,
+    config: DenoiserConfig | None = None,
+    settings: TrainSettings | None = None,
+    command: Sequence[str] | None = None,
+) -> FitResult:
+    """Train (or resume training) the inpainting denoiser and the verifier on ``dataset``.
+
+    Parameters
+    ----------
+    dataset : Dataset
+        Training split (load it with ``pipeline.dataset.load_dataset``).
+    out_dir : path
+        Model folder. If it holds a checkpoint of the same data, classes, size and seed, training
+        resumes from it.
+    steps : int, optional
+        Train until this many steps in total (counting resumed ones). Exactly one of ``steps`` and
+        ``minutes`` must be given.
+    minutes : float, optional
+        Train for this much wall time in this call (the verifier adds about a minute).
+    seed : int
+        Seeds the initial weights and every batch: batch ``k`` depends only on ``(seed, k)``.
+    batch_size : int
+        Windows per step (throughput on 2 cores falls above 16).
+    progress : callable, optional
+        Called with a :class:`FitProgress` after every step.
+    config, settings : optional
+        Model size and optimisation settings (defaults: :class:`DenoiserConfig`, :class:`TrainSettings`).
+    command : sequence of str, optional
+        The command line that started this, recorded in the metadata.
+
+    Returns
+    -------
+    FitResult
+
+    Raises
+    ------
+    ValueError
+        Bad ``steps``, ``minutes``, ``seed`` or ``batch_size``.
+    ModelError
+        ``out_dir`` holds a checkpoint of other data, classes, size or seed.
+    DatasetError
+        The data set has no usable images or objects.
+
+    References
+    ----------
+    Ho, Jain, Abbeel, "Denoising Diffusion Probabilistic Models", NeurIPS 2020; Ho & Salimans,
+    "Classifier-Free Diffusion Guidance", 2021 (label dropped with p = 0.1).
+    """
+    # 1. check inputs
+    if (steps is None) == (minutes is None):
+        raise ValueError(f"give exactly one of steps and minutes, got steps={steps}, minutes={minutes}")
+    if steps is not None and (not isinstance(steps, int) or steps < 1):
+        raise ValueError(f"steps must be an integer >= 1, got {steps!r}")
+    if minutes is not None and not (math.isfinite(minutes) and minutes > 0):
+        raise ValueError(f"minutes must be > 0, got {minutes!r}")
+    if batch_size < 1:
+        raise ValueError(f"batch_size must be >= 1, got {batch_size}")
+    if not isinstance(seed, int) or seed < 0:
+        raise ValueError(f"seed must be an integer >= 0, got {seed!r}")
+    config = config or DenoiserConfig()
+    settings = settings or TrainSettings()
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+
+    # 2. data
+    examples = load_examples(dataset)
+    data_hash = dataset_hash(dataset)
+    labels = label_table(examples.classes)
+
+    # 3. model, optimiser, EMA: fresh or from the checkpoint
+    with torch.random.fork_rng():
+        torch.manual_seed(seed)
+        unet = build_unet(config, len(labels))
+    ema = copy.deepcopy(unet).requires_grad_(False)
+    optimizer = torch.optim.AdamW(unet.parameters(), lr=settings.learning_rate, weight_decay=0.0)
+    identity = {"data_hash": data_hash, "labels": list(labels), "config": config.to_dict(), "seed": seed}
+    step, loss_value, seconds_before = _resume(out / CHECKPOINT, identity, unet, ema, optimizer)
+    resumed_from = step
+    scheduler = training_scheduler()
+    alphas = scheduler.alphas_cumprod.float()
+
+    # 4. train
+    started = time.monotonic()
+    unet.train()
+    while not _done(step, steps, minutes, started):
+        lr = settings.learning_rate * min(1.0, (step + 1) / settings.warmup_steps)
+        for group in optimizer.param_groups:
+            group["lr"] = lr
+        loss_value = _train_step(unet, optimizer, examples, labels, alphas, seed, step, batch_size, config, settings)
+        step += 1
+        _update_ema(ema, unet, min(settings.ema_decay, (1 + step) / (10 + step)))
+        if progress is not None:
+            progress(FitProgress("denoiser", step, steps, loss_value, time.monotonic() - started))
+        if step % settings.checkpoint_every == 0:
+            total_seconds = seconds_before + time.monotonic() - started
+            _save_checkpoint(out / CHECKPOINT, identity, unet, ema, optimizer, step, loss_value, total_seconds)
+    seconds = time.monotonic() - started
+    _save_checkpoint(out / CHECKPOINT, identity, unet, ema, optimizer, step, loss_value, seconds_before + seconds)
+
+    # 5. verifier (retrained only when missing or made from other data)
+    if not _verifier_matches(out, data_hash):
+        verifier = fit_verifier(examples, steps=settings.verifier_steps, rng=seed, progress=progress)
+        save_verifier(verifier, out, data_hash=data_hash)
+
+    # 6. export the EMA weights as a diffusers folder, metadata last: it marks the folder complete
+    (out / METADATA).unlink(missing_ok=True)
+    _replace_dir(out / "unet", lambda tmp: ema.save_pretrained(tmp, safe_serialization=True))
+    _replace_dir(out / "scheduler", lambda tmp: scheduler.save_pretrained(tmp))
+    metadata = {
+        "format": FORMAT,
+        "format_version": FORMAT_VERSION,
+        "classes": list(examples.classes),
+        "labels": list(labels),
+        "window": config.window,
+        "denoiser": config.to_dict(),
+        "training": {**settings.__dict__, "batch_size": batch_size, "steps": steps, "minutes": minutes},
+        "data_hash": data_hash,
+        "data_source": str(dataset.source) if dataset.source else None,
+        "command": list(command) if command is not None else None,
+        "seed": seed,
+        "steps_done": step,
+        "final_loss": loss_value,
+        "denoiser_train_seconds": round(seconds_before + seconds, 1),
+        "versions": {
+            "rarefill": __version__,
+            "torch": torch.__version__,
+            "diffusers": diffusers.__version__,
+            "numpy": np.__version__,
+            "opencv": cv2.__version__,
+            "python": platform.python_version(),
+        },
+    }
+    write_json_atomic(out / METADATA, metadata, indent=2)
+    return FitResult(out, step, seconds, loss_value, resumed_from)
+
+
+def _done(step: int, steps: int | None, minutes: float | None, started: float) -> bool:
+    if steps is not None:
+        return step >= steps
+    return time.monotonic() - started >= minutes * 60.0
+
+
+def _train_step(unet, optimizer, examples, labels, alphas, seed, step, batch_size, config, settings) -> float:
+    rng = np.random.default_rng([seed, step])
+    images, masks, label_ids = make_batch(
+        examples, labels, rng, batch_size=batch_size, window=config.window, background_share=settings.background_share
+    )
+    drop = rng.random(batch_size) < settings.drop_label
+    label_ids[drop] = NULL_LABEL
+    noise_gen = torch.Generator().manual_seed(int(rng.integers(2**62)))
+    x0 = torch.from_numpy(images)
+    mask = torch.from_numpy(masks)
+    noise = torch.randn(x0.shape, generator=noise_gen)
+    t = torch.randint(0, len(alphas), (batch_size,), generator=noise_gen)
+    a = alphas[t].sqrt().view(-1, 1, 1, 1)
+    s = (1 - alphas[t]).sqrt().view(-1, 1, 1, 1)
+    noisy = a * x0 + s * noise
+    target = a * noise - s * x0  # v-prediction (Salimans & Ho 2022)
+    model_in = torch.cat([noisy, x0 * (1 - mask), mask], dim=1)
+    with torch.autocast("cpu", dtype=torch.bfloat16, enabled=settings.use_bf16):
+        pred = unet(model_in, t, class_labels=torch.from_numpy(label_ids)).sample
+    weight = settings.outside_weight + (settings.mask_weight - settings.outside_weight) * mask
+    loss = (weight * (pred.float() - target) ** 2).sum() / (weight.sum() * 3)
+    optimizer.zero_grad(set_to_none=True)
+    loss.backward()
+    torch.nn.utils.clip_grad_norm_(unet.parameters(), 1.0)
+    optimizer.step()
+    return float(loss.detach())
+
+
+@torch.no_grad()
+def _update_ema(ema: torch.nn.Module, model: torch.nn.Module, decay: float) -> None:
+    for target, source in zip(ema.parameters(), model.parameters(), strict=True):
+        target.lerp_(source.detach(), 1.0 - decay)
+
+
+def _save_checkpoint(path: Path, identity: dict, unet, ema, optimizer, step: int, loss: float, seconds: float) -> None:
+    buffer = io.BytesIO()
+    state = {
+        **identity,
+        "unet": unet.state_dict(),
+        "ema": ema.state_dict(),
+        "optimizer": optimizer.state_dict(),
+        "step": step,
+        "loss": loss,
+        "seconds": seconds,
+    }
+    torch.save(state, buffer)
+    write_bytes_atomic(path, buffer.getvalue())
+
+
+def _resume(path: Path, identity: dict, unet, ema, optimizer) -> tuple[int, float, float]:
+    if not path.exists():
+        return 0, math.nan, 0.0
+    try:
+        state = torch.load(path, map_location="cpu", weights_only=True)
+    except Exception as exc:  # a checkpoint torch cannot read is the user's to remove, not ours
+        raise ModelError(f"{path}: checkpoint cannot be read ({exc})", hint="delete it to start afresh") from None
+    for key, value in identity.items():
+        if state.get(key) != value:
+            raise ModelError(
+                f"{path}: checkpoint was made with another {key} ({state.get(key)!r:.80} != {value!r:.80})",
+                hint="train into a new --out folder, or delete the checkpoint to start afresh",
+            )
+    unet.load_state_dict(state["unet"])
+    ema.load_state_dict(state["ema"])
+    optimizer.load_state_dict(state["optimizer"])
+    return int(state["step"]), float(state["loss"]), float(state["seconds"])
+
+
+def _verifier_matches(out: Path, data_hash: str) -> bool:
+    path = out / VERIFIER_JSON
+    if not path.exists():
+        return False
+    try:
+        return json.loads(path.read_text(encoding="utf-8")).get("data_hash") == data_hash
+    except (OSError, ValueError):
+        return False
+
+
+def _replace_dir(target: Path, write: Callable[[Path], None]) -> None:
+    # Write the whole folder beside the target, then swap it in, so a crash never leaves half a folder.
+    tmp = target.with_name(f".{target.name}.tmp")
+    shutil.rmtree(tmp, ignore_errors=True)
+    write(tmp)
+    old = target.with_name(f".{target.name}.old")
+    shutil.rmtree(old, ignore_errors=True)
+    if target.exists():
+        target.rename(old)
+    tmp.rename(target)
+    shutil.rmtree(old, ignore_errors=True)
