@@ -9,6 +9,15 @@ from pathlib import Path
 from typing import Any
 
 
+def _file_mode() -> int:
+    umask = os.umask(0)
+    os.umask(umask)
+    return 0o666 & ~umask
+
+
+_FILE_MODE = _file_mode()
+
+
 def write_bytes_atomic(path: str | os.PathLike[str], data: bytes) -> None:
     """Write ``data`` to ``path`` through a temporary file in the same folder, fsync, then rename.
 
@@ -19,6 +28,7 @@ def write_bytes_atomic(path: str | os.PathLike[str], data: bytes) -> None:
     target.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
     try:
+        os.fchmod(fd, _FILE_MODE)  # mkstemp makes owner-only files; outputs get the usual mode
         with os.fdopen(fd, "wb") as handle:
             handle.write(data)
             handle.flush()

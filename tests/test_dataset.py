@@ -337,3 +337,12 @@ def test_fuzz_any_json_is_a_dataset_or_a_dataset_error(tiny_set, raw):
     else:
         assert isinstance(result, Dataset)
         json.dumps(to_coco(result))
+
+
+def test_saved_files_get_the_usual_mode_not_owner_only(tiny_set, tmp_path):
+    json_path, images = tiny_set
+    out = tmp_path / "copy.json"
+    save_dataset(load_dataset(json_path, images), out)
+    umask = os.umask(0)
+    os.umask(umask)
+    assert out.stat().st_mode & 0o777 == 0o666 & ~umask
