@@ -14,7 +14,7 @@ import numpy as np
 from .background import FIELD_KINDS
 from .camera import Camera
 from .render import DrawItem, draw_items, owner_buffers
-from .scene import Lighting, Road, SceneObject, SceneryItem, SceneSpec
+from .scene import RARE, Lighting, Road, SceneObject, SceneryItem, SceneSpec
 from .sizes import sample_size, sample_style
 from .vehicles import object_box, object_polygons
 
@@ -226,24 +226,24 @@ def _clear_of(obj: SceneObject, others: Sequence[SceneObject]) -> bool:
     return True
 
 
-def _acceptable(objects: list[SceneObject], scenery_items: list[DrawItem], camera: Camera, lighting) -> bool:
-    obj = objects[-1]
-    x, y, w, h = object_box(obj, camera)
+def _acceptable(
+    cand: SceneObject, placed: list[DrawItem], scenery_items: list[DrawItem], camera: Camera, lighting: Lighting
+) -> DrawItem | None:
+    """The candidate's draw item if it can join the ``placed`` objects honestly, else ``None``."""
+    x, y, w, h = object_box(cand, camera)
     if x < 0.5 or y < 0.5 or x + w > camera.width - 0.5 or y + h > camera.height - 0.5:
-        return False
+        return None
     if not 15.0 <= h <= 80.0:
-        return False
-    spec_objects = tuple(objects)
-    items = scenery_items + [
-        DrawItem(o.z_m, i + 1, tuple(object_polygons(o, camera, lighting))) for i, o in enumerate(spec_objects)
-    ]
-    items.sort(key=lambda it: -it.depth)  # stable: same order as render.draw_items
-    owner, amodal = owner_buffers(camera, items, len(spec_objects))
+        return None
+    item = DrawItem(cand.z_m, len(placed) + 1, tuple(object_polygons(cand, camera, lighting)))
+    items = scenery_items + placed + [item]
+    items.sort(key=lambda it: -it.depth)  # stable: the same order as render.draw_items
+    owner, amodal = owner_buffers(camera, items, len(placed) + 1)
     for i, mask in enumerate(amodal):
         total = mask.sum()
         if total == 0 or (owner == i + 1).sum() < MIN_VISIBLE * total:
-            return False
-    return True
+            return None
+    return item
 
 
 def sample_scene(rng: np.random.Generator | int, *, categories: Sequence[str]) -> SceneSpec:
@@ -262,7 +262,7 @@ def sample_scene(rng: np.random.Generator | int, *, categories: Sequence[str]) -
     SceneSpec
     """
     rng = np.random.default_rng(rng)
-    rare_first = sorted(categories, key=lambda c: c not in ("tractor", "works_trailer"))
+    rare_first = sorted(categories, key=lambda c: c not in RARE)
     for _ in range(50):
         camera = sample_camera(rng)
         lighting = _sample_lighting(rng)
@@ -272,15 +272,18 @@ def sample_scene(rng: np.random.Generator | int, *, categories: Sequence[str]) -
         base = SceneSpec(camera, lighting, road, fields, tuple(scenery), (), int(rng.integers(2**31)))
         scenery_items = draw_items(base)
         objects: list[SceneObject] = []
+        placed: list[DrawItem] = []
         complete = True
         for category in rare_first:
             for _ in range(_ATTEMPTS):
                 cand = _candidate(category, road, camera, rng)
-                if _clear_of(cand, objects) and _acceptable([*objects, cand], scenery_items, camera, lighting):
+                item = _acceptable(cand, placed, scenery_items, camera, lighting) if _clear_of(cand, objects) else None
+                if item is not None:
                     objects.append(cand)
+                    placed.append(item)
                     break
             else:
-                if category in ("tractor", "works_trailer"):
+                if category in RARE:
                     complete = False
                     break
         if complete and objects:

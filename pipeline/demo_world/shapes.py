@@ -32,7 +32,7 @@ class Shade:
     def apply(self, colour: Colour, *, emissive: bool = False) -> Colour:
         if emissive:
             return colour
-        return tuple(float(np.clip(c * self.factor * t, 0, 255)) for c, t in zip(colour, self.tint, strict=True))
+        return tuple(min(255.0, max(0.0, float(c) * self.factor * t)) for c, t in zip(colour, self.tint, strict=True))
 
 
 def homography(src: np.ndarray, dst: np.ndarray) -> np.ndarray:
