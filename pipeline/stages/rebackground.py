@@ -12,8 +12,9 @@ Options (recipe ``[[stage]]`` keys):
 ``windows``
     How many off-road windows to regenerate (at most; fewer when the scene has no room).
 ``other_objects``
-    ``"keep"``: the other labelled objects stay, pixels and labels untouched. ``"remove"``: each one that
-    does not touch the kept object is inpainted over with background and listed in ``Candidate.dropped``.
+    ``"keep"``: the other labelled objects stay, pixels and labels untouched. ``"remove"``: each one whose
+    grown box touches nothing that stays (the kept object, crowd regions, objects that must stay because they
+    touch those) is inpainted over with background, whole, and listed in ``Candidate.dropped``.
 ``max_unlabelled_probability``
     Each regenerated window (and its four quadrants) is shown to the verifier; if it gives any object class
     more than this, the new surroundings hold an unlabelled object and the candidate fails ``"unlabelled"``.
@@ -193,19 +194,23 @@ def draft(job: Job, attempt: int, spec: StageSpec, ctx: StageContext) -> Draft |
     _, _, w, h = target.bbox
     keep = _grow(pixels, max(SEAM_CLEARANCE_PX, int(math.ceil(KEEP_MARGIN_SHARE * min(w, h)))))
 
-    # 3. the other objects: removed (background over their box) or kept (their box is off limits)
+    # 3. the other objects: removed (background over their grown box) or kept (their box is off limits). An
+    # object is removed only whole: one whose region touches anything kept stays, which may keep more.
     others = [a for a in scene.annotations if a is not target]
-    removing = spec.options["other_objects"] == "remove"
-    removed, remove_masks, untouchable = [], [], keep.copy()
-    for ann in others:
-        region = _box_region(shape, ann.bbox, grow=REMOVE_MARGIN * max(ann.bbox[2], ann.bbox[3]))
-        if removing and not ann.iscrowd and not (region & keep).any():
-            removed.append(ann)
-            remove_masks.append(region)
-        else:
+    regions = {a.id: _box_region(shape, a.bbox, grow=REMOVE_MARGIN * max(a.bbox[2], a.bbox[3])) for a in others}
+    removable = [a for a in others if not a.iscrowd] if spec.options["other_objects"] == "remove" else []
+    untouchable = keep.copy()
+    changed_mind = True
+    while changed_mind:
+        changed_mind = False
+        for ann in [a for a in others if a not in removable]:
             untouchable |= _box_region(shape, ann.bbox, grow=SEAM_CLEARANCE_PX)
-    for region in remove_masks:
-        region &= ~untouchable
+        for ann in list(removable):
+            if (regions[ann.id] & untouchable).any():
+                removable.remove(ann)
+                changed_mind = True
+    removed = removable
+    remove_masks = [regions[a.id] for a in removed]
 
     # 4. off-road windows: not on the road (nor within the seam clearance of its edge), not near objects
     road = _grow(ctx.surface(scene).mask, SEAM_CLEARANCE_PX)
