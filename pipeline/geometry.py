@@ -109,7 +109,7 @@ class HeightBand:
 
 @dataclass(frozen=True)
 class GroundModel:
-    """A fitted ground-plane model of one data set (one image size, one horizon).
+    """A fitted ground-plane model of one data set (one image size; a horizon per image).
 
     Attributes
     ----------
