@@ -23,7 +23,7 @@ import numpy as np
 from pipeline.dataset import load_dataset
 from pipeline.generator import InpaintRequest, load
 from pipeline.generator.verifier import load_verifier
-from pipeline.generator.windows import box_mask, context_window, crop_window
+from pipeline.generator.windows import box_mask, context_window, crop_window, object_mask_box
 
 TILE = 80
 
@@ -74,16 +74,23 @@ def main() -> None:
         category = train.category_by_name(label).id
         aspects = [a.bbox[2] / a.bbox[3] for a in train.annotations() if a.category_id == category]
         picks = plausible_boxes(held_out, label, float(np.median(aspects)), args.per_class, rng)
-        requests = []
+        requests, object_boxes = [], []
         for k, (scene, box) in enumerate(picks):
             image = scene.load_rgb()
-            mask = box_mask(image.shape[:2], box, dilate_px=2.0 + 0.04 * max(box[2], box[3]))
-            requests.append(InpaintRequest(image, mask, box, label, seed=args.seed * 100_000 + count + k))
+            # Masked as the insert stage masks a new object (default mask_margin 0.12); the window is
+            # centred on the mask's box, and the verifier looks at the object's box.
+            mask_box = object_mask_box(box, margin=0.12)
+            mask = box_mask(image.shape[:2], mask_box)
+            rows, cols = np.flatnonzero(mask.any(axis=1)), np.flatnonzero(mask.any(axis=0))
+            mask_box = (cols[0], rows[0], cols[-1] + 1 - cols[0], rows[-1] + 1 - rows[0])
+            request = InpaintRequest(image, mask, mask_box, label, seed=args.seed * 100_000 + count + k)
+            requests.append(request)
+            object_boxes.append(box)
         count += len(requests)
         frames = generator.inpaint(requests, steps=args.steps, guidance=args.guidance)
         accepted = 0
-        for request, frame in zip(requests, frames, strict=True):
-            probability = verifier.present_probability(frame, request.box, label)
+        for request, frame, box in zip(requests, frames, object_boxes, strict=True):
+            probability = verifier.present_probability(frame, box, label)
             accepted += probability >= 0.5
             window = context_window(request.box, frame.shape[:2])
             before = crop_window(request.image, window, TILE)

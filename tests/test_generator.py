@@ -27,6 +27,7 @@ from pipeline.generator.windows import (
     context_window,
     crop_window,
     feather_alpha,
+    object_mask_box,
     paste_window,
     window_mask,
 )
@@ -109,6 +110,15 @@ def test_box_mask_takes_pixels_whose_centres_lie_in_the_box():
     mask = box_mask((10, 10), (2, 3, 4, 2))
     assert mask.sum() == 8 and mask[3:5, 2:6].all()
     assert box_mask((10, 10), (2.6, 3, 1, 1)).sum() == 1  # centre 3.5 lies in [2.6, 3.6)
+
+
+def test_object_mask_box_matches_the_insert_stage_mask():
+    from pipeline.stages.insert import object_mask
+
+    box = (20.0, 30.0, 10.0, 20.0)
+    ours = box_mask((64, 96), object_mask_box(box, margin=0.1))
+    assert np.array_equal(ours, object_mask(box, (64, 96), 0.1))
+    assert ours.sum() == 12 * 24  # 1 px each side, 2 px on top, 2 px below
 
 
 def test_feather_alpha_is_zero_outside_and_ramps_inside():

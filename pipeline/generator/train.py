@@ -47,7 +47,7 @@ from .model import (
 from .progress import FitProgress
 from .request import BACKGROUND
 from .verifier import VERIFIER_JSON, fit_verifier, save_verifier
-from .windows import box_mask, context_window, crop_window, window_mask
+from .windows import box_mask, context_window, crop_window, object_mask_box, window_mask
 
 CHECKPOINT = "checkpoint.pt"
 
@@ -65,6 +65,7 @@ class TrainSettings:
     ema_decay: float = 0.998
     drop_label: float = 0.1
     background_share: float = 0.25
+    mask_margin: tuple[float, float] = (0.06, 0.18)
     mask_weight: float = 1.0
     outside_weight: float = 0.1
     checkpoint_every: int = 200
@@ -95,8 +96,15 @@ def make_batch(
     batch_size: int,
     window: int,
     background_share: float,
+    mask_margin: tuple[float, float] = (0.06, 0.18),
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """One training batch of windows.
+
+    Each window is masked the way the insert stage masks a new object (:func:`object_mask_box`): the
+    box grown by a margin drawn from ``mask_margin`` (share of its width on each side, of its height on
+    top) and 2 px below, so the model learns to draw an object standing at the bottom centre of its mask
+    with some room around it, not one that fills the mask. The window is centred on the mask's box, as
+    at sampling time, with a little jitter in position and context.
 
     Returns
     -------
@@ -116,16 +124,14 @@ def make_batch(
             ref = examples.sample_object(rng)
             scene, box, label = ref.scene, ref.box, ref.label
         image = examples.images[scene]
-        x, y, w, h = box
-        # Jitter where the window sits and how much context it holds: sampling centres it exactly
-        # with scale 2, but a little variety teaches the model not to rely on that.
-        side = max(w, h)
-        centre_x = x + w / 2 + rng.uniform(-0.08, 0.08) * side
-        centre_y = y + h / 2 + rng.uniform(-0.08, 0.08) * side
-        scale = rng.uniform(1.8, 2.3)
-        win = context_window((centre_x - w / 2, centre_y - h / 2, w, h), image.shape[:2], scale=scale)
-        win = _cover(win, box, image.shape[:2])
-        mask = box_mask(image.shape[:2], box, dilate_px=1.0 + 0.04 * side)
+        mask = box_mask(image.shape[:2], object_mask_box(box, margin=rng.uniform(*mask_margin)))
+        mask_box = _bounding_box(mask)
+        mx, my, mw, mh = mask_box
+        side = max(mw, mh)
+        shifted = (mx + rng.uniform(-0.08, 0.08) * side, my + rng.uniform(-0.08, 0.08) * side, mw, mh)
+        win = context_window(shifted, image.shape[:2], scale=rng.uniform(1.8, 2.3))
+        if not _contains(win, mask_box):
+            win = context_window(mask_box, image.shape[:2])
         crop = crop_window(image, win, window)
         crop_mask = window_mask(mask, win, window)
         if rng.random() < 0.5:
@@ -136,12 +142,15 @@ def make_batch(
     return images, masks, label_ids
 
 
-def _cover(win, box, image_hw):
-    # The jittered window must still contain the whole box; fall back to the centred window if not.
+def _bounding_box(mask: np.ndarray) -> tuple[float, float, float, float]:
+    rows = np.flatnonzero(mask.any(axis=1))
+    cols = np.flatnonzero(mask.any(axis=0))
+    return (float(cols[0]), float(rows[0]), float(cols[-1] + 1 - cols[0]), float(rows[-1] + 1 - rows[0]))
+
+
+def _contains(win, box) -> bool:
     x, y, w, h = box
-    if win.x0 <= x and win.y0 <= y and x + w <= win.x0 + win.size and y + h <= win.y0 + win.size:
-        return win
-    return context_window(box, image_hw)
+    return win.x0 <= x and win.y0 <= y and x + w <= win.x0 + win.size and y + h <= win.y0 + win.size
 
 
 # --------------------------------------------------------------------------------------------------
@@ -301,7 +310,13 @@ def _done(step: int, steps: int | None, minutes: float | None, started: float) -
 def _train_step(unet, optimizer, examples, labels, alphas, seed, step, batch_size, config, settings) -> float:
     rng = np.random.default_rng([seed, step])
     images, masks, label_ids = make_batch(
-        examples, labels, rng, batch_size=batch_size, window=config.window, background_share=settings.background_share
+        examples,
+        labels,
+        rng,
+        batch_size=batch_size,
+        window=config.window,
+        background_share=settings.background_share,
+        mask_margin=settings.mask_margin,
     )
     drop = rng.random(batch_size) < settings.drop_label
     label_ids[drop] = NULL_LABEL

@@ -230,3 +230,20 @@ def box_mask(image_hw: tuple[int, int], box: Sequence[float], *, dilate_px: floa
     mask = np.zeros((height, width), dtype=bool)
     mask[r0:r1, c0:c1] = True
     return mask
+
+
+def object_mask_box(box: Sequence[float], *, margin: float, below_px: float = 2.0) -> tuple[float, float, float, float]:
+    """The region to repaint for an object in ``box``: grown by ``margin`` x width on each side,
+    ``margin`` x height on top and ``below_px`` below (the footprint stays where it is).
+
+    This is the mask geometry of the insert stage (``pipeline.stages.insert.object_mask``); training
+    uses it so the model draws objects that leave the same room around them.
+
+    Returns
+    -------
+    (x, y, w, h) tuple of float
+    """
+    if margin < 0:
+        raise ValueError(f"margin must be >= 0, got {margin}")
+    x, y, w, h = (float(v) for v in box)
+    return (x - margin * w, y - margin * h, w * (1 + 2 * margin), h * (1 + margin) + below_px)
