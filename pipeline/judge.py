@@ -23,7 +23,9 @@ def judge(candidate: Candidate, ctx: StageContext) -> list[Verdict]:
         position = index if index >= 0 else len(boxes) - len(candidate.new) + (-1 - index)
         box, category_id = boxes[position]
         others = [b for i, (b, _) in enumerate(boxes) if i != position]
-        verdicts += check_geometry(box, names[category_id], others, ctx.ground, surface_mask, ctx.limits)
+        verdicts += check_geometry(
+            box, names[category_id], others, ctx.ground, surface_mask, ctx.limits, image_id=candidate.scene.id
+        )
     if ctx.verifier is not None:
         for obj in candidate.new:
             verdicts.append(present(candidate, obj.bbox, names[obj.category_id], ctx))
