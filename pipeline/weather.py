@@ -126,6 +126,11 @@ def transmission(distance_m: np.ndarray | float, beta: float) -> np.ndarray:
         return np.where(np.isinf(d), 0.0 if beta > 0 else 1.0, np.exp(-beta * np.where(np.isinf(d), 0.0, d)))
 
 
+SCENERY_HEIGHT_M = 10.0
+"""Height given to roadside scenery (trees, houses, poles) that rises above the horizon: field trees are about
+8-15 m tall, houses 6-9 m (from memory). Only its top row is seen, so a tall thing reads as near."""
+
+
 def scene_distance(
     shape: tuple[int, int],
     *,
@@ -133,13 +138,19 @@ def scene_distance(
     focal_px: float,
     camera_height_m: float,
     objects: Sequence[tuple[np.ndarray, float]] = (),
+    scenery: np.ndarray | None = None,
+    scenery_height_m: float = SCENERY_HEIGHT_M,
 ) -> np.ndarray:
     """Distance (metres) to what each pixel shows, from a level camera over flat ground.
 
-    Ground pixels (centre row ``r + 0.5`` below the horizon) are at ``Z = f h_cam / (r + 0.5 - v_h)``;
-    pixels at or above the horizon are sky, at infinity (trees and hills there are treated as far away);
-    every pixel of an object is at the distance of its footprint (its bottom row). Objects are painted far
-    to near, so a nearer object hides a farther one.
+    Ground pixels (centre row ``r + 0.5`` below the horizon) are at ``Z = f h_cam / (r + 0.5 - v_h)``; pixels
+    at or above the horizon are sky, at infinity, unless ``scenery`` marks them: then each column's scenery is
+    a thing ``scenery_height_m`` tall whose top is at the column's highest scenery row ``v_t``, so at
+    ``Z = f (H - h_cam) / (v_h - v_t)`` (the nearest top within 1% of the image width counts, so a crown's
+    ragged edge keeps the crown's distance); below the horizon such a column shows nothing farther than its
+    scenery (the thing hides the ground behind it down to its base). Every pixel of an object is at the
+    distance of its footprint (its bottom row). Objects are painted far to near, so a nearer object hides a
+    farther one.
 
     Parameters
     ----------
@@ -152,6 +163,10 @@ def scene_distance(
         Camera height above the ground (> 0).
     objects : sequence of ((H, W) bool ndarray, float)
         Each object's pixels and its bottom row; an object standing at or above the horizon is at infinity.
+    scenery : (H, W) bool ndarray, optional
+        Pixels above the horizon that are not sky (see :func:`sky_mask`).
+    scenery_height_m : float
+        Assumed real height of scenery (> camera height).
 
     Returns
     -------
@@ -160,15 +175,31 @@ def scene_distance(
 
     References
     ----------
-    Hartley, Zisserman, "Multiple View Geometry in Computer Vision", 2nd ed., 2004 (pinhole over a plane).
+    Hartley, Zisserman, "Multiple View Geometry in Computer Vision", 2nd ed., 2004 (pinhole over a plane);
+    Hoiem, Efros, Hebert, "Putting Objects in Perspective", CVPR 2006 (height above the horizon).
     """
     if not (focal_px > 0 and camera_height_m > 0):
         raise ValueError(f"focal_px and camera_height_m must be > 0, got {focal_px!r}, {camera_height_m!r}")
+    if not scenery_height_m > camera_height_m:
+        raise ValueError(f"scenery_height_m must exceed the camera height, got {scenery_height_m!r}")
     height, width = shape
     rows = np.arange(height, dtype=np.float64) + 0.5 - horizon_row
     with np.errstate(divide="ignore"):
         per_row = np.where(rows > 0, focal_px * camera_height_m / np.where(rows > 0, rows, 1.0), np.inf)
     distance = np.repeat(per_row[:, None], width, axis=1)
+    if scenery is not None:
+        if scenery.shape != (height, width) or scenery.dtype != bool:
+            raise ValueError(f"scenery must be a {(height, width)} bool array, got {scenery.shape}")
+        above = scenery & (rows <= 0)[:, None]
+        has = above.any(axis=0)
+        rise = np.where(has, horizon_row - np.argmax(above, axis=0), 0.0).astype(np.float32)
+        reach = max(1, int(round(0.01 * width))) * 2 + 1
+        rise = cv2.dilate(rise.reshape(1, -1), np.ones((1, reach), np.uint8)).ravel().astype(np.float64)
+        with np.errstate(divide="ignore"):
+            column = focal_px * (scenery_height_m - camera_height_m) / np.maximum(rise, 0.5)
+        # below the horizon a column's scenery hides the farther ground behind it, down to its base row
+        below = has[None, :] & (rows > 0)[:, None]
+        distance = np.where(above, column[None, :], np.where(below, np.minimum(distance, column[None, :]), distance))
     depths = [_footprint_distance(bottom, horizon_row, focal_px, camera_height_m) for _, bottom in objects]
     for index in np.argsort(depths)[::-1]:
         region = objects[index][0]
@@ -176,6 +207,34 @@ def scene_distance(
             raise ValueError(f"objects[{index}] mask must be a {(height, width)} bool array, got {region.shape}")
         distance[region] = depths[index]
     return distance
+
+
+def sky_mask(image: np.ndarray, horizon_row: float, *, step: int = 3) -> np.ndarray:
+    """Sky pixels: above the horizon and reached from the top edge through smooth colour changes.
+
+    A flood fill from the top row's brightest half (by dark channel: sky is light in every channel, foliage
+    is not) spreads while neighbouring pixels differ by at most ``step`` levels per channel; sky gradients
+    and soft clouds pass, the outline of a tree, roof or pole stops it.
+
+    Returns
+    -------
+    (H, W) bool ndarray
+    """
+    _check_image(image)
+    height, width = image.shape[:2]
+    rows = int(np.clip(math.ceil(horizon_row), 0, height))
+    sky = np.zeros((height, width), dtype=bool)
+    if rows == 0:
+        return sky
+    region = np.ascontiguousarray(cv2.GaussianBlur(image[:rows], (3, 3), 0))
+    fill = np.zeros((rows + 2, width + 2), np.uint8)
+    dark = region[0].min(axis=1)
+    flags = 4 | cv2.FLOODFILL_MASK_ONLY | (1 << 8)
+    for col in np.flatnonzero(dark >= np.median(dark)):
+        if not fill[1, col + 1]:
+            cv2.floodFill(region, fill, (int(col), 0), (0, 0, 0), (step,) * 3, (step,) * 3, flags)
+    sky[:rows] = fill[1:-1, 1:-1].astype(bool)
+    return sky
 
 
 def _footprint_distance(bottom_row: float, horizon_row: float, focal_px: float, camera_height_m: float) -> float:
@@ -676,11 +735,12 @@ def poisson_gaussian_noise(
 def lamp_positions(box: Sequence[float], kind: str) -> list[tuple[float, float, float]]:
     """Lamp centres and radius ``(col, row, radius_px)`` on a vehicle box.
 
-    Head and tail lamps sit near the lower corners (15% in from each side, 72% down), 6% of the box width
-    across; amber beacons of a works trailer sit at the top corners of its warning board.
+    Head and tail lamps sit near the lower corners (15% in from each side, 72% down) with a radius of 5% of
+    the box's shorter side (so a long side view gets no giant lamps); amber beacons of a works trailer sit at
+    the top corners of its warning board.
     """
     x, y, w, h = (float(v) for v in box)
-    radius = max(0.8, 0.06 * w)
+    radius = max(0.8, 0.05 * min(w, h))
     if kind == "amber":
         return [(x + 0.12 * w, y + 0.06 * h, radius), (x + 0.88 * w, y + 0.06 * h, radius)]
     if kind not in ("head", "tail"):

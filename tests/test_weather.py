@@ -97,6 +97,31 @@ def test_scene_distance_follows_the_pinhole_over_a_plane():
     assert np.allclose(distance[region_near], 200.0 * 1.5 / 20.0)  # the nearer object hides the far one
 
 
+def test_scenery_above_the_horizon_is_placed_by_its_height():
+    # Hoiem et al. 2006: a thing of height H standing at Z rises f (H - h_cam) / Z rows above the horizon.
+    scenery = np.zeros((60, 50), bool)
+    scenery[10:36, 20:26] = True  # a tree whose top is 20 rows above the horizon
+    distance = weather.scene_distance(
+        (60, 50), horizon_row=30.0, focal_px=200.0, camera_height_m=1.5, scenery=scenery, scenery_height_m=10.0
+    )
+    tree = 200.0 * (10.0 - 1.5) / 20.0
+    assert distance[15, 22] == pytest.approx(tree) and distance[29, 25] == pytest.approx(tree)
+    assert np.isinf(distance[15, 40])  # sky beside it
+    assert distance[31, 22] == pytest.approx(tree)  # the ground behind the tree is hidden by it
+    assert distance[55, 22] == pytest.approx(200.0 * 1.5 / (55.5 - 30.0))  # the ground in front is not
+
+
+def test_sky_mask_stops_at_outlines():
+    image = np.zeros((60, 80, 3), np.uint8)
+    image[:30] = np.linspace(230, 150, 30).astype(np.uint8)[:, None, None]  # a smooth sky gradient
+    image[:30, :, 0] //= 2
+    image[5:40, 50:70] = (40, 90, 30)  # a tree crown
+    image[0:5, 58:62] = (40, 90, 30)  # and its tip at the top edge: foliage is no seed of the sky
+    image[30:] = (90, 100, 70)
+    sky = weather.sky_mask(image, horizon_row=30.0)
+    assert sky[:30, :45].all() and not sky[5:30, 50:70].any() and not sky[30:].any()
+
+
 def test_airlight_comes_from_the_haziest_sky_not_a_bright_object():
     image = np.zeros((100, 100, 3), np.uint8)
     image[:40] = (80, 130, 230)  # blue sky

@@ -3,7 +3,8 @@
 Physically based renderers only (:mod:`pipeline.weather`); the stage asks the generator for nothing, so its
 draft has no inpainting requests. Distances come from the fitted ground model: ground pixels from their
 row, labelled objects at their footprint (bottom-row) distance over their pixels (segmentation, else a
-GrabCut estimate inside the box), sky at infinity. The focal length is not in the labels: it is taken
+GrabCut estimate inside the box), sky at infinity, and trees or houses rising above the horizon at the
+distance where a 10 m tall thing would reach their top row. The focal length is not in the labels: it is taken
 from an assumed 60-degree horizontal field of view (:func:`pipeline.filters.focal_from_fov`), the camera
 height from the ground model (else :data:`pipeline.weather.DEFAULT_CAMERA_HEIGHT_M`).
 
@@ -169,6 +170,7 @@ def scene_geometry(image: np.ndarray, scene: Scene, ctx: StageContext) -> Geomet
         focal_px=focal,
         camera_height_m=camera,
         objects=[(region, a.bottom_row) for region, a in zip(regions, labelled, strict=True)],
+        scenery=~weather.sky_mask(image, ground.horizon_row),
     )
     return Geometry(distance, regions, labelled, ctx.surface(scene).mask, ground.horizon_row, focal, camera)
 
