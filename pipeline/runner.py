@@ -22,7 +22,7 @@ import numpy as np
 
 from .dataset import Annotation, Dataset, Scene, category_entry, load_dataset
 from .errors import ModelError, UsageError
-from .filters import FilterLimits
+from .filters import FilterLimits, phash
 from .generator import Generator
 from .geometry import GroundModel, fit_ground
 from .judge import judge
@@ -173,7 +173,7 @@ def run_recipe(
         accepted=counts["accepted"],
         attempted=counts["attempted"],
         annotations=counts["annotations"],
-        rejections=dict(state.rejections),
+        rejections=dict(state.rejections + Counter(duplicate=counts["duplicates"])),
         chunks_skipped=len(mine) - len(todo),
         shard=shard,
     )
@@ -373,7 +373,21 @@ class ChunkMaker:
                     KEY: new_annotation_provenance(obj.requested, spec.kind, obj.extra),
                 }
             )
-        return {"image": image, "annotations": annotations}
+        return {"image": image, "annotations": annotations, "dedupe": self._dedupe_mark(candidate)}
+
+    def _dedupe_mark(self, candidate: Candidate) -> dict:
+        """What the near-duplicate filter compares (see :func:`pipeline.writer.duplicate_of`)."""
+        changed = candidate.changed if candidate.changed.any() else np.ones(candidate.changed.shape, dtype=bool)
+        rows = np.flatnonzero(changed.any(axis=1))
+        cols = np.flatnonzero(changed.any(axis=0))
+        box = [int(cols[0]), int(rows[0]), int(cols[-1] + 1 - cols[0]), int(rows[-1] + 1 - rows[0])]
+        region = candidate.image[box[1] : box[1] + box[3], box[0] : box[0] + box[2]]
+        return {
+            "source": candidate.scene.id,
+            "box": box,
+            "hash": f"{phash(region):016x}",
+            "limit": self.setup.limits.min_hash_distance,
+        }
 
 
 def _kept(ann: Annotation) -> dict:

@@ -146,18 +146,35 @@ def read_chunks(root: Path, chunks: Iterable[int]) -> list[dict]:
 def assemble(root: Path, chunks: Iterable[int], *, categories: list, info: Mapping[str, Any]) -> dict[str, int]:
     """Write labels.json and manifest.jsonl from committed chunks, in the order given.
 
-    Image and annotation ids count from 1 in that order. Returns counts for the summary.
+    Image and annotation ids count from 1 in that order. Here, in plan order, the near-duplicate filter
+    runs: an accepted output that repeats an earlier one (see :func:`duplicate_of`) is turned into a
+    rejection and its image removed. Doing it here rather than per job keeps every job independent of the
+    others, so resumed, parallel and sharded runs still end with the same bytes. Returns counts.
     """
     images: list[dict] = []
     annotations: list[dict] = []
     manifest: list[str] = []
-    attempted = 0
+    attempted = duplicates = 0
+    earlier: dict[int, list[tuple[dict, str]]] = {}
     for record in read_chunks(root, chunks):
         for job in record["jobs"]:
-            for attempt in job["attempts"]:
+            attempts = [dict(a) for a in job["attempts"]]
+            output = job.get("output")
+            if output is not None and "dedupe" in output:
+                same_source = earlier.setdefault(output["dedupe"]["source"], [])
+                verdict = duplicate_of(output["dedupe"], same_source)
+                if verdict is None:
+                    same_source.append((output["dedupe"], output["image"]["file_name"]))
+                else:
+                    (Path(root) / "images" / output["image"]["file_name"]).unlink(missing_ok=True)
+                    attempts[-1].update(accepted=False, rejected_by=["duplicate"])
+                    attempts[-1]["verdicts"] = [*attempts[-1]["verdicts"], verdict]
+                    attempts[-1].pop("file_name", None)
+                    duplicates += 1
+                    output = None
+            for attempt in attempts:
                 attempted += 1
                 manifest.append(json.dumps({"job": job["key"], **attempt}, ensure_ascii=False, allow_nan=False))
-            output = job.get("output")
             if output is None:
                 continue
             image_id = len(images) + 1
@@ -167,4 +184,32 @@ def assemble(root: Path, chunks: Iterable[int], *, categories: list, info: Mappi
     labels = {"info": dict(info), "images": images, "annotations": annotations, "categories": categories}
     write_json_atomic(Path(root) / "labels.json", labels)
     write_bytes_atomic(Path(root) / "manifest.jsonl", ("\n".join(manifest) + "\n" if manifest else "").encode())
-    return {"attempted": attempted, "accepted": len(images), "annotations": len(annotations)}
+    counts = {"attempted": attempted, "accepted": len(images), "annotations": len(annotations)}
+    return {**counts, "duplicates": duplicates}
+
+
+def duplicate_of(mark: Mapping[str, Any], earlier: Sequence[tuple[Mapping[str, Any], str]]) -> dict | None:
+    """The rejecting verdict (as a dict) if ``mark`` repeats an earlier output of the same source, else None.
+
+    A mark is ``{"source", "box", "hash", "limit"}``: the source image id, the box around everything the
+    stage changed, the pHash of that region, and the least Hamming distance between distinct outputs. Two
+    outputs repeat each other when their changed regions overlap (IoU >= 0.5) and look alike (hash distance
+    under the limit); outputs that changed different places of one scene are not duplicates, although
+    their whole-image hashes are close.
+    """
+    for other, file_name in earlier:
+        if _iou(mark["box"], other["box"]) < 0.5:
+            continue
+        distance = (int(mark["hash"], 16) ^ int(other["hash"], 16)).bit_count()
+        if distance < mark["limit"]:
+            reason = f"{distance} bits from {file_name} over the same region (limit {mark['limit']}): near-duplicate"
+            return {"name": "duplicate", "passed": False, "value": distance, "limit": mark["limit"], "reason": reason}
+    return None
+
+
+def _iou(a: Sequence[float], b: Sequence[float]) -> float:
+    ix = max(0.0, min(a[0] + a[2], b[0] + b[2]) - max(a[0], b[0]))
+    iy = max(0.0, min(a[1] + a[3], b[1] + b[3]) - max(a[1], b[1]))
+    inter = ix * iy
+    union = a[2] * a[3] + b[2] * b[3] - inter
+    return inter / union if union > 0 else 0.0
