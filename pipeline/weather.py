@@ -200,7 +200,7 @@ def scene_distance(
         # below the horizon a column's scenery hides the farther ground behind it, down to its base row
         below = has[None, :] & (rows > 0)[:, None]
         distance = np.where(above, column[None, :], np.where(below, np.minimum(distance, column[None, :]), distance))
-    depths = [_footprint_distance(bottom, horizon_row, focal_px, camera_height_m) for _, bottom in objects]
+    depths = [footprint_distance(bottom, horizon_row, focal_px, camera_height_m) for _, bottom in objects]
     for index in np.argsort(depths)[::-1]:
         region = objects[index][0]
         if region.shape != (height, width) or region.dtype != bool:
@@ -237,7 +237,8 @@ def sky_mask(image: np.ndarray, horizon_row: float, *, step: int = 3) -> np.ndar
     return sky
 
 
-def _footprint_distance(bottom_row: float, horizon_row: float, focal_px: float, camera_height_m: float) -> float:
+def footprint_distance(bottom_row: float, horizon_row: float, focal_px: float, camera_height_m: float) -> float:
+    """Distance (m) of an object standing at ``bottom_row``: ``f h_cam / (v_b - v_h)``; inf at or above the horizon."""
     depth = float(bottom_row) - horizon_row
     return focal_px * camera_height_m / depth if depth > 0 else math.inf
 

@@ -86,7 +86,8 @@ def draft(job: Job, attempt: int, spec: StageSpec, ctx: StageContext) -> Draft:
 
 @dataclass(frozen=True)
 class Rendered:
-    """A restyled image; ``veiled`` is the attenuated image before particles and noise (for contrast)."""
+    """A restyled image. Conditions that veil the scene (fog, snow) give their extinction coefficient ``beta``
+    and ``veiled``, the attenuated image before particles are drawn, on which object contrast is measured."""
 
     image: np.ndarray
     beta: float | None = None
@@ -175,9 +176,7 @@ def scene_geometry(image: np.ndarray, scene: Scene, ctx: StageContext) -> Geomet
     return Geometry(distance, regions, labelled, ctx.surface(scene).mask, ground.horizon_row, focal, camera)
 
 
-def visibility(
-    clear: np.ndarray, veiled: np.ndarray, geometry: Geometry, *, beta: float | None
-) -> list[dict[str, Any]]:
+def visibility(clear: np.ndarray, veiled: np.ndarray, geometry: Geometry, *, beta: float) -> list[dict[str, Any]]:
     """Per labelled object: footprint transmission, contrast before and after, invisible or not, and why."""
     before = weather.luminance(weather.srgb_to_linear(clear))
     after = weather.luminance(weather.srgb_to_linear(veiled))
@@ -188,11 +187,10 @@ def visibility(
     for ann, region in zip(geometry.annotations, geometry.regions, strict=True):
         ring = weather.ring_mask(ann.bbox, clear.shape[:2])
         ring = ring & ~objects if (ring & ~objects).any() else ring
-        distance = weather.scene_distance(
-            (1, 1), horizon_row=geometry.horizon_row, focal_px=geometry.focal_px,
-            camera_height_m=geometry.camera_height_m, objects=[(np.ones((1, 1), bool), ann.bottom_row)],
-        )[0, 0]  # fmt: skip
-        t = float(weather.transmission(distance, beta)) if beta is not None else 1.0
+        distance = weather.footprint_distance(
+            ann.bottom_row, geometry.horizon_row, geometry.focal_px, geometry.camera_height_m
+        )
+        t = float(weather.transmission(distance, beta))
         c0 = weather.object_contrast(before, region, ring)
         c1 = weather.object_contrast(after, region, ring)
         limit = weather.MOR_CONTRAST
