@@ -9,6 +9,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 from PIL import Image
+from pycocotools import mask as mask_utils
 
 from pipeline.dataset import Annotation, load_dataset
 from pipeline.filters import FilterLimits
@@ -191,6 +192,16 @@ def test_a_segmentation_is_used_as_is():
     ann = Annotation(1, 1, 1, (10.0, 5.0, 20.0, 8.0), 160.0, segmentation=[[10, 5, 30, 5, 30, 13, 10, 13]])
     mask, source = rebackground.object_pixels(np.zeros((40, 50, 3), np.uint8), ann)
     assert source == "segmentation" and mask.sum() == 160 and mask[5:13, 10:30].all()
+
+
+def test_a_compressed_rle_segmentation_decodes_to_its_mask():
+    truth = np.zeros((30, 40), np.uint8, order="F")
+    truth[5:10, 3:20] = 1
+    rle = mask_utils.encode(truth)  # pycocotools, the COCO reference encoder
+    segmentation = {"size": rle["size"], "counts": rle["counts"].decode("ascii")}  # as JSON stores it
+    ann = Annotation(1, 1, 1, (3.0, 5.0, 17.0, 5.0), 85.0, segmentation=segmentation)
+    mask, source = rebackground.object_pixels(np.zeros((30, 40, 3), np.uint8), ann)
+    assert source == "segmentation" and np.array_equal(mask, truth.astype(bool))
 
 
 def test_grabcut_finds_an_object_inside_a_loose_box():
