@@ -555,6 +555,10 @@ def probe(
         float, typer.Option("--input-scale", help="Scale images by this before the detector, (0, 1].")
     ] = 0.5,
     batch_size: Annotated[int, typer.Option("--batch-size", min=1, help="Images per training step.")] = 8,
+    workers: Annotated[int, typer.Option("--workers", min=1, help="Models trained side by side (processes).")] = 1,
+    threads: Annotated[
+        int | None, typer.Option("--threads", min=1, help="Torch threads per model (default: cores / workers).")
+    ] = None,
 ) -> None:
     """Does the synthetic data help a detector on real held-out data? Train a compact CenterNet per
     condition and seed, score it with COCOeval on --test, and compare rare-class AP50.
@@ -584,6 +588,8 @@ def probe(
         epochs=epochs,
         minutes=minutes,
         settings=TrainSettings(steps=1, batch_size=batch_size, input_scale=input_scale),
+        workers=workers,
+        threads=threads,
         progress=lambda line: err.print(line, markup=False),
     )
     paths = write_results(result, out)

@@ -18,14 +18,18 @@ from __future__ import annotations
 import hashlib
 import json
 import math
+import multiprocessing
 import os
 import time
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
+from concurrent.futures import Executor, Future, ProcessPoolExecutor, as_completed
+from contextlib import contextmanager
 from dataclasses import asdict, dataclass, replace
 from pathlib import Path
 from typing import Any
 
 import numpy as np
+import torch
 
 from ..dataset import load_dataset, to_coco
 from ..errors import DatasetError, RunError, UsageError
@@ -111,6 +115,8 @@ def run_probe(
     minutes: float | None = None,
     settings: TrainSettings | None = None,
     rare_below: int = 50,
+    workers: int = 1,
+    threads: int | None = None,
     progress: Callable[[str], None] | None = None,
 ) -> ProbeResult:
     """Train and score detectors on real, real + filtered synthetic and real + unfiltered synthetic data.
@@ -145,6 +151,12 @@ def run_probe(
         Network and optimiser settings; its ``steps`` is replaced. Default: :class:`TrainSettings`.
     rare_below : int
         A class with fewer real training instances than this is rare (as in :func:`pipeline.merge.merge`).
+    workers : int
+        Models trained side by side, each in its own process (one worker: in this process). Small
+        networks use two cores better as two processes of one thread than as one of two threads.
+    threads : int, optional
+        Torch threads per model; default ``cpu_count // workers``. (For one worker, this process's
+        thread count is set for the probe and restored after it.)
     progress : callable, optional
         Called with one line of text as the probe advances.
 
@@ -170,6 +182,12 @@ def run_probe(
         raise UsageError(f"--minutes must be > 0, got {minutes}")
     if not isinstance(seeds, int) or seeds < 1:
         raise UsageError(f"--seeds must be an integer >= 1, got {seeds!r}")
+    if not isinstance(workers, int) or workers < 1:
+        raise UsageError(f"--workers must be an integer >= 1, got {workers!r}")
+    if threads is None:
+        threads = max(1, (os.cpu_count() or 1) // workers)
+    if not isinstance(threads, int) or threads < 1:
+        raise UsageError(f"--threads must be an integer >= 1, got {threads!r}")
     if not synthetic:
         raise UsageError("give at least one synthetic run folder (--synthetic RUN_DIR)")
     for folder in [*synthetic, *([unfiltered] if unfiltered is not None else [])]:
@@ -195,34 +213,18 @@ def run_probe(
         if not ann.iscrowd:
             counts[names[ann.category_id]] += 1
     rare = tuple(name for name in class_names if counts[name] < rare_below)
-    test_data = prepare(test, class_names, input_scale=settings.input_scale)
-    test_truth = to_coco(test)
-    test_ids = [test.category_by_name(name).id for name in class_names]
 
-    # 3. fix the number of steps
-    real_data = prepare(real, class_names, input_scale=settings.input_scale)
-    if epochs is not None:
-        steps = math.ceil(epochs * len(real.scenes) / settings.batch_size)
-    else:
-        seconds = _seconds_per_step(real_data, settings)
-        steps = max(1, math.floor(minutes * 60 / seconds))
-        say(f"timed {seconds:.2f} s per step: {steps} steps per model for {minutes:g} min")
-    settings = replace(settings, steps=steps)
-
-    # 4. train and score every condition for every seed (seed-major, so early stops still pair up)
+    # 3. make the training sets (seed-major, so the first results already pair up)
     conditions = [("real", 0.0)] + [(kind, s) for kind in ("filtered", "unfiltered") for s in shares if s > 0]
     if unfiltered is None:
         conditions = [c for c in conditions if c[0] != "unfiltered"]
     runs_by_kind = {"filtered": [Path(s) for s in synthetic], "unfiltered": [Path(unfiltered)] if unfiltered else []}
     held_out = [Path(test_json), *map(Path, guards)]
-    total = seeds * len(conditions)
-    runs: list[ProbeRun] = []
+    jobs: list[_Job] = []
     for seed in range(seeds):
         for kind, share in conditions:
-            name = condition_name(kind, share)
-            say(f"[{len(runs) + 1}/{total}] {name}, seed {seed}: preparing")
             if kind == "real":
-                data, set_file, n_syn, reached = real_data, Path(real_json), 0, 0.0
+                set_file, images_dir, n_syn, reached = Path(real_json), real.images_dir, 0, 0.0
             else:
                 set_file = out / "sets" / f"{kind}-{share:g}-seed{seed}.json"
                 summary = merge(
@@ -234,22 +236,40 @@ def run_probe(
                     images_mode="link",
                     seed=seed,
                 )
-                merged = load_dataset(set_file, set_file.parent)
-                data = prepare(merged, class_names, input_scale=settings.input_scale)
-                n_syn, reached = summary.synthetic_selected, summary.share
-            key = _run_key(set_file, settings, seed, test_json)
+                images_dir, n_syn, reached = set_file.parent, summary.synthetic_selected, summary.share
+            name = condition_name(kind, share)
             record = out / "runs" / f"{name}-seed{seed}.json"
-            run = _reuse(record, key)
-            if run is None:
-                run = _train_and_score(
-                    data, test_data, test_truth, test_ids, kind=kind, share=share, seed=seed, settings=settings,
-                    synthetic_images=n_syn, reached_share=reached,
-                )  # fmt: skip
-                write_json_atomic(record, {"key": key, "run": run.to_dict()}, indent=1)
-            runs.append(run)
+            jobs.append(
+                _Job(kind, share, seed, str(set_file), str(images_dir), str(test_json), class_names, settings,
+                     n_syn, reached, str(record))
+            )  # fmt: skip
+    say(f"made {len(jobs)} training sets in {out / 'sets'}")
+
+    # 4. fix the number of steps: equal for every model
+    with _pool(workers, threads) as pool:
+        if epochs is not None:
+            steps = math.ceil(epochs * len(real.scenes) / settings.batch_size)
+        else:
+            # time as many models side by side as will train side by side
+            timings = list(pool.map(_seconds_per_step, [jobs[0]] * workers))
+            seconds = float(np.mean(timings))
+            steps = max(1, math.floor(minutes * 60 / seconds))
+            say(f"timed {seconds:.2f} s per step: {steps} steps per model for {minutes:g} min")
+        settings = replace(settings, steps=steps)
+        jobs = [replace(job, settings=settings) for job in jobs]
+
+        # 5. train and score (models already trained with the same inputs are read back)
+        runs: list[ProbeRun | None] = [_reuse(Path(job.record), _run_key(job)) for job in jobs]
+        if any(runs):
+            say(f"reusing {sum(r is not None for r in runs)} model(s) trained before with the same inputs")
+        pending = {pool.submit(_train_job, job): i for i, job in enumerate(jobs) if runs[i] is None}
+        for future in as_completed(pending):
+            i = pending[future]
+            run = runs[i] = future.result()
             say(
-                f"[{len(runs)}/{total}] {name}, seed {seed}: AP50 {run.evaluation.ap50:.3f}, "
-                f"rare AP50 {_fmt(rare_ap50(run.evaluation, rare))}, {run.train_seconds:.0f} s"
+                f"[{sum(r is not None for r in runs)}/{len(jobs)}] {run.condition}, seed {run.seed}: "
+                f"AP50 {run.evaluation.ap50:.3f}, rare AP50 {_fmt(rare_ap50(run.evaluation, rare))}, "
+                f"{run.train_seconds:.0f} s"
             )
     inputs = {
         "real": str(real_json),
@@ -260,7 +280,9 @@ def run_probe(
         "real_instances": counts,
         "rare_below": rare_below,
     }
-    return ProbeResult(tuple(runs), class_names, rare, settings, shares, tuple(range(seeds)), inputs)
+    return ProbeResult(
+        tuple(r for r in runs if r is not None), class_names, rare, settings, shares, tuple(range(seeds)), inputs
+    )
 
 
 def parse_shares(text: str) -> tuple[float, ...]:
@@ -292,52 +314,109 @@ def _check_shares(shares: Sequence[float]) -> tuple[float, ...]:
     return tuple(sorted(values))
 
 
-def _seconds_per_step(data: Prepared, settings: TrainSettings) -> float:
-    stamps: list[float] = []
-    train_detector(
-        data,
-        settings=replace(settings, steps=CALIBRATION_STEPS),
-        rng=0,
-        progress=lambda *_: stamps.append(time.perf_counter()),
+@dataclass(frozen=True)
+class _Job:
+    """One model to train: everything a worker process needs, as plain picklable values."""
+
+    kind: str
+    share: float
+    seed: int
+    set_file: str
+    images_dir: str
+    test_json: str
+    class_names: tuple[str, ...]
+    settings: TrainSettings
+    synthetic_images: int
+    reached_share: float
+    record: str
+
+
+def _init_worker(threads: int) -> None:
+    torch.set_num_threads(threads)
+
+
+@contextmanager
+def _pool(workers: int, threads: int) -> Iterator[Executor]:
+    """``workers`` spawned processes with ``threads`` torch threads each, or this process for one worker."""
+    if workers == 1:
+        before = torch.get_num_threads()
+        torch.set_num_threads(threads)
+        try:
+            with _InlineExecutor() as pool:
+                yield pool
+        finally:
+            torch.set_num_threads(before)
+        return
+    context = multiprocessing.get_context("spawn")
+    with ProcessPoolExecutor(workers, mp_context=context, initializer=_init_worker, initargs=(threads,)) as pool:
+        yield pool
+
+
+class _InlineExecutor(Executor):
+    """Runs each submitted call at once in this process (keeps one-worker probes simple to debug)."""
+
+    def submit(self, fn, /, *args, **kwargs) -> Future:
+        future: Future = Future()
+        try:
+            future.set_result(fn(*args, **kwargs))
+        except BaseException as exc:
+            future.set_exception(exc)
+        return future
+
+
+def _load(job: _Job) -> tuple[Prepared, Prepared, dict[str, Any], list[int]]:
+    train = load_dataset(job.set_file, job.images_dir)
+    test = load_dataset(job.test_json)
+    scale = job.settings.input_scale
+    test_ids = [test.category_by_name(name).id for name in job.class_names]
+    return (
+        prepare(train, job.class_names, input_scale=scale),
+        prepare(test, job.class_names, input_scale=scale),
+        to_coco(test),
+        test_ids,
     )
+
+
+def _seconds_per_step(job: _Job) -> float:
+    data = _load(job)[0]
+    stamps: list[float] = []
+    settings = replace(job.settings, steps=CALIBRATION_STEPS)
+    train_detector(data, settings=settings, rng=0, progress=lambda *_: stamps.append(time.perf_counter()))
     return (stamps[-1] - stamps[1]) / (len(stamps) - 2)
 
 
-def _train_and_score(
-    data: Prepared,
-    test_data: Prepared,
-    test_truth: Mapping[str, Any],
-    test_ids: Sequence[int],
-    *,
-    kind: str,
-    share: float,
-    seed: int,
-    settings: TrainSettings,
-    synthetic_images: int,
-    reached_share: float,
-) -> ProbeRun:
-    detector = train_detector(data, settings=settings, rng=seed)
+def _train_job(job: _Job) -> ProbeRun:
+    data, test_data, test_truth, test_ids = _load(job)
+    detector = train_detector(data, settings=job.settings, rng=job.seed)
     if not all(math.isfinite(v) for v in detector.losses):
-        raise RunError(f"training diverged ({condition_name(kind, share)}, seed {seed}): the loss is not finite")
+        name = condition_name(job.kind, job.share)
+        raise RunError(f"training diverged ({name}, seed {job.seed}): the loss is not finite")
     results = detections_to_coco(predict(detector, test_data), test_data.image_ids, test_ids)
-    return ProbeRun(
-        kind=kind,
-        share=share,
-        seed=seed,
+    run = ProbeRun(
+        kind=job.kind,
+        share=job.share,
+        seed=job.seed,
         train_images=len(data.images),
-        synthetic_images=synthetic_images,
-        reached_share=reached_share,
-        steps=settings.steps,
+        synthetic_images=job.synthetic_images,
+        reached_share=job.reached_share,
+        steps=job.settings.steps,
         train_seconds=detector.seconds,
         first_loss=detector.losses[0],
         final_loss=float(np.mean(detector.losses[-max(1, len(detector.losses) // 20) :])),
         evaluation=evaluate(test_truth, results),
     )
+    write_json_atomic(job.record, {"key": _run_key(job), "run": run.to_dict()}, indent=1)
+    return run
 
 
-def _run_key(set_file: Path, settings: TrainSettings, seed: int, test_json: str | os.PathLike[str]) -> str:
+def _run_key(job: _Job) -> str:
     """What a trained model depends on: its training set's bytes, the settings, the seed, the test split."""
-    parts = {"set": file_sha256(set_file), "settings": asdict(settings), "seed": seed, "test": file_sha256(test_json)}
+    parts = {
+        "set": file_sha256(job.set_file),
+        "settings": asdict(job.settings),
+        "seed": job.seed,
+        "test": file_sha256(job.test_json),
+    }
     return hashlib.sha256(json.dumps(parts, sort_keys=True).encode()).hexdigest()
 
 
