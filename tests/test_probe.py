@@ -298,6 +298,20 @@ def test_probe_trains_every_condition_and_seed_and_writes_results(world):
     assert [r.train_seconds for r in again.runs] == [r.train_seconds for r in result.runs]
 
 
+def test_probe_turns_minutes_into_one_step_count_for_every_model(world):
+    settings = TrainSettings(steps=1, batch_size=2, input_scale=1.0, width=4)
+    lines: list[str] = []
+    result = run_probe(
+        world["train"], test_json=world["test"], guards=[], synthetic=[world["filtered"]], out=world["out"],
+        shares=(0.5,), seeds=1, minutes=0.02, settings=settings, threads=1, progress=lines.append,
+    )  # fmt: skip
+    steps = {r.steps for r in result.runs}
+    assert len(steps) == 1 and steps.pop() == result.settings.steps >= 1
+    assert [r.condition for r in result.runs] == ["real", "filtered@0.5"]  # the baseline is always trained
+    timed = next(line for line in lines if line.startswith("timed"))
+    assert f": {result.settings.steps} steps per model for 0.02 min" in timed
+
+
 def test_summary_pairs_each_run_with_the_real_run_of_its_seed():
     def run(kind: str, seed: int, tractor: float) -> ProbeRun:
         scores = {"car": 0.9, "tractor": tractor}
@@ -340,7 +354,9 @@ def test_cli_probe_happy_path_with_two_worker_processes(world):
     assert result.exit_code == 0, result.output
     assert "| real |" in result.stdout and "| filtered@0.5 |" in result.stdout
     assert (world["out"] / "rare_ap50.png").is_file()
-    assert "[2/2] filtered@0.5, seed 0: AP50" in result.stderr
+    # the two models train side by side, so either may finish first
+    assert "filtered@0.5, seed 0: AP50" in result.stderr and "real, seed 0: AP50" in result.stderr
+    assert "[1/2]" in result.stderr and "[2/2]" in result.stderr
 
 
 @pytest.mark.parametrize(

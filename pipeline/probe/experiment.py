@@ -22,8 +22,7 @@ import multiprocessing
 import os
 import time
 from collections.abc import Callable, Iterator, Mapping, Sequence
-from concurrent.futures import Executor, Future, ProcessPoolExecutor, as_completed
-from contextlib import contextmanager
+from concurrent.futures import ProcessPoolExecutor, as_completed
 from dataclasses import asdict, dataclass, replace
 from pathlib import Path
 from typing import Any
@@ -246,31 +245,29 @@ def run_probe(
     say(f"made {len(jobs)} training sets in {out / 'sets'}")
 
     # 4. fix the number of steps: equal for every model
-    with _pool(workers, threads) as pool:
-        if epochs is not None:
-            steps = math.ceil(epochs * len(real.scenes) / settings.batch_size)
-        else:
-            # time as many models side by side as will train side by side
-            timings = list(pool.map(_seconds_per_step, [jobs[0]] * workers))
-            seconds = float(np.mean(timings))
-            steps = max(1, math.floor(minutes * 60 / seconds))
-            say(f"timed {seconds:.2f} s per step: {steps} steps per model for {minutes:g} min")
-        settings = replace(settings, steps=steps)
-        jobs = [replace(job, settings=settings) for job in jobs]
+    if epochs is not None:
+        steps = math.ceil(epochs * len(real.scenes) / settings.batch_size)
+    else:
+        # time as many models side by side as will train side by side
+        timings = [t for _, t in _in_parallel(_seconds_per_step, [jobs[0]] * workers, workers, threads)]
+        seconds = float(np.mean(timings))
+        steps = max(1, math.floor(minutes * 60 / seconds))
+        say(f"timed {seconds:.2f} s per step: {steps} steps per model for {minutes:g} min")
+    settings = replace(settings, steps=steps)
+    jobs = [replace(job, settings=settings) for job in jobs]
 
-        # 5. train and score (models already trained with the same inputs are read back)
-        runs: list[ProbeRun | None] = [_reuse(Path(job.record), _run_key(job)) for job in jobs]
-        if any(runs):
-            say(f"reusing {sum(r is not None for r in runs)} model(s) trained before with the same inputs")
-        pending = {pool.submit(_train_job, job): i for i, job in enumerate(jobs) if runs[i] is None}
-        for future in as_completed(pending):
-            i = pending[future]
-            run = runs[i] = future.result()
-            say(
-                f"[{sum(r is not None for r in runs)}/{len(jobs)}] {run.condition}, seed {run.seed}: "
-                f"AP50 {run.evaluation.ap50:.3f}, rare AP50 {_fmt(rare_ap50(run.evaluation, rare))}, "
-                f"{run.train_seconds:.0f} s"
-            )
+    # 5. train and score (models already trained with the same inputs are read back)
+    runs: list[ProbeRun | None] = [_reuse(Path(job.record), _run_key(job)) for job in jobs]
+    if any(runs):
+        say(f"reusing {sum(r is not None for r in runs)} model(s) trained before with the same inputs")
+    todo = [i for i, run in enumerate(runs) if run is None]
+    for k, run in _in_parallel(_train_job, [jobs[i] for i in todo], workers, threads):
+        runs[todo[k]] = run
+        say(
+            f"[{sum(r is not None for r in runs)}/{len(jobs)}] {run.condition}, seed {run.seed}: "
+            f"AP50 {run.evaluation.ap50:.3f}, rare AP50 {_fmt(rare_ap50(run.evaluation, rare))}, "
+            f"{run.train_seconds:.0f} s"
+        )
     inputs = {
         "real": str(real_json),
         "test": str(test_json),
@@ -335,33 +332,27 @@ def _init_worker(threads: int) -> None:
     torch.set_num_threads(threads)
 
 
-@contextmanager
-def _pool(workers: int, threads: int) -> Iterator[Executor]:
-    """``workers`` spawned processes with ``threads`` torch threads each, or this process for one worker."""
+def _in_parallel(function: Callable[[_Job], Any], jobs: Sequence[_Job], workers: int, threads: int) -> Iterator:
+    """Yield ``(index, function(job))`` as each call finishes, in ``workers`` spawned processes with
+    ``threads`` torch threads each; one worker runs the calls in order in this process."""
     if workers == 1:
         before = torch.get_num_threads()
         torch.set_num_threads(threads)
         try:
-            with _InlineExecutor() as pool:
-                yield pool
+            for i, job in enumerate(jobs):
+                yield i, function(job)
         finally:
             torch.set_num_threads(before)
         return
     context = multiprocessing.get_context("spawn")
-    with ProcessPoolExecutor(workers, mp_context=context, initializer=_init_worker, initargs=(threads,)) as pool:
-        yield pool
-
-
-class _InlineExecutor(Executor):
-    """Runs each submitted call at once in this process (keeps one-worker probes simple to debug)."""
-
-    def submit(self, fn, /, *args, **kwargs) -> Future:
-        future: Future = Future()
-        try:
-            future.set_result(fn(*args, **kwargs))
-        except BaseException as exc:
-            future.set_exception(exc)
-        return future
+    pool = ProcessPoolExecutor(workers, mp_context=context, initializer=_init_worker, initargs=(threads,))
+    try:
+        futures = {pool.submit(function, job): i for i, job in enumerate(jobs)}
+        for future in as_completed(futures):
+            yield futures[future], future.result()
+    finally:
+        # on an error, do not wait for the queued models
+        pool.shutdown(wait=False, cancel_futures=True)
 
 
 def _load(job: _Job) -> tuple[Prepared, Prepared, dict[str, Any], list[int]]:
