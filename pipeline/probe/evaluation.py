@@ -44,6 +44,7 @@ class Evaluation:
     per_class_ap50: Mapping[str, float | None]
 
     def to_dict(self) -> dict[str, Any]:
+        """JSON-ready form; ``Evaluation(**d)`` reads it back."""
         return {
             "ap": self.ap,
             "ap50": self.ap50,

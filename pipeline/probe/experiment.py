@@ -61,9 +61,11 @@ class ProbeRun:
 
     @property
     def condition(self) -> str:
+        """``real``, or ``kind@share`` (see :func:`condition_name`)."""
         return condition_name(self.kind, self.share)
 
     def to_dict(self) -> dict[str, Any]:
+        """JSON-ready form, with the condition name; :meth:`from_dict` reads it back."""
         out = asdict(self)
         out["evaluation"] = self.evaluation.to_dict()
         out["condition"] = self.condition
@@ -71,6 +73,7 @@ class ProbeRun:
 
     @classmethod
     def from_dict(cls, raw: Mapping[str, Any]) -> ProbeRun:
+        """Inverse of :meth:`to_dict`."""
         fields = {k: v for k, v in raw.items() if k not in ("condition", "evaluation")}
         return cls(**fields, evaluation=Evaluation(**raw["evaluation"]))
 

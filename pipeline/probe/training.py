@@ -219,7 +219,7 @@ def predict(detector: TrainedDetector, data: Prepared, *, batch_size: int = 16, 
 
 
 def _batch(data: Prepared, picked: Sequence[int], *, flips: np.ndarray, max_objects: int) -> dict[str, torch.Tensor]:
-    images = data.images[picked].copy()
+    images = data.images[picked]  # fancy indexing copies, so flipping below leaves data intact
     canvas_h, canvas_w = images.shape[1:3]
     output_shape = (canvas_h // STRIDE, canvas_w // STRIDE)
     targets = []
