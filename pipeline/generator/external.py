@@ -53,7 +53,8 @@ class PipelineGenerator:
             self._hash = folder_sha256(self.folder, files)
         return {
             "kind": "diffusers-inpaint-pipeline",
-            "folder": str(self.folder) if self.folder else None,
+            # The folder's name, not its path: provenance must not change with where a clone lives.
+            "folder": self.folder.name if self.folder else None,
             "folder_sha256": self._hash,
             "classes": list(self.classes),
             "window": self.window,

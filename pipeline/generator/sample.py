@@ -69,7 +69,8 @@ class DiffusionGenerator:
         """Provenance of this generator."""
         return {
             "kind": FORMAT,
-            "folder": str(self.folder) if self.folder else None,
+            # The folder's name, not its path: provenance must not change with where a clone lives.
+            "folder": self.folder.name if self.folder else None,
             "folder_sha256": self.folder_hash,
             "classes": list(self.classes),
             "window": self.window,
