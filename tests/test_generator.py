@@ -222,6 +222,8 @@ def test_fit_resumes_from_its_checkpoint(scenes, tiny_model, tmp_path):
     shutil.copytree(tiny_model, tmp_path / "m")
     result = fit(scenes, out_dir=tmp_path / "m", steps=8, batch_size=4, config=TINY, settings=QUICK)
     assert result.resumed_from == 6 and result.steps_done == 8
+    history = json.loads((tmp_path / "m" / "rarefill_model.json").read_text())["history"]
+    assert [h["steps"] for h in history] == [[0, 6], [6, 8]]
     with pytest.raises(ModelError, match="seed"):
         fit(scenes, out_dir=tmp_path / "m", steps=9, seed=5, batch_size=4, config=TINY, settings=QUICK)
 

@@ -270,6 +270,8 @@ def fit(
         save_verifier(verifier, out, data_hash=data_hash)
 
     # 6. export the EMA weights as a diffusers folder, metadata last: it marks the folder complete
+    history = _history(out / METADATA, data_hash) if resumed_from else []
+    history.append({"command": list(command) if command is not None else None, "steps": [resumed_from, step]})
     (out / METADATA).unlink(missing_ok=True)
     _replace_dir(out / "unet", lambda tmp: ema.save_pretrained(tmp, safe_serialization=True))
     _replace_dir(out / "scheduler", lambda tmp: scheduler.save_pretrained(tmp))
@@ -284,6 +286,7 @@ def fit(
         "data_hash": data_hash,
         "data_source": str(dataset.source) if dataset.source else None,
         "command": list(command) if command is not None else None,
+        "history": history,
         "seed": seed,
         "steps_done": step,
         "final_loss": loss_value,
@@ -379,6 +382,19 @@ def _resume(path: Path, identity: dict, unet, ema, optimizer) -> tuple[int, floa
     ema.load_state_dict(state["ema"])
     optimizer.load_state_dict(state["optimizer"])
     return int(state["step"]), float(state["loss"]), float(state["seconds"])
+
+
+def _history(metadata: Path, data_hash: str) -> list[dict]:
+    # Each call of a resumed training adds one entry, so the metadata names every command that shaped it.
+    try:
+        previous = json.loads(metadata.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return []
+    if previous.get("data_hash") != data_hash:
+        return []
+    if "history" in previous:
+        return list(previous["history"])
+    return [{"command": previous.get("command"), "steps": [0, previous.get("steps_done")]}]
 
 
 def _verifier_matches(out: Path, data_hash: str) -> bool:
