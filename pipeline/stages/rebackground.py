@@ -14,7 +14,9 @@ Options (recipe ``[[stage]]`` keys):
 ``other_objects``
     ``"keep"``: the other labelled objects stay, pixels and labels untouched. ``"remove"``: each one whose
     grown box touches nothing that stays (the kept object, crowd regions, objects that must stay because they
-    touch those) is inpainted over with background, whole, and listed in ``Candidate.dropped``.
+    touch those) is inpainted over with background, whole, and listed in ``Candidate.dropped``. With the
+    default CPU-trained model a removed car leaves a visible smudge that neither the verifier (it calls the
+    smudge background) nor the seam filter catches, so ``"keep"`` is the default.
 ``max_unlabelled_probability``
     Each regenerated window (and its four quadrants) is shown to the verifier; if it gives any object class
     more than this, the new surroundings hold an unlabelled object and the candidate fails ``"unlabelled"``.
