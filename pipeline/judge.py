@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from .filters import Verdict, check_geometry, seam
+from .filters import Verdict, check_geometry, scale, seam, surface
 from .stages.base import Candidate, StageContext
 
 PRESENT_FILTER = "present"
@@ -11,20 +11,29 @@ PRESENT_FILTER = "present"
 def judge(candidate: Candidate, ctx: StageContext) -> list[Verdict]:
     """All verdicts on one candidate; it is accepted when every one passes.
 
-    For each checked object: scale, surface, overlap, gap and objects-per-image against every other
-    labelled object; for each new object, whether the verifier sees the wanted class in its box; for the
-    whole image, the blend seam around the generated region.
+    For each checked new object: scale, surface, overlap, gap and objects-per-image against every other
+    labelled object. For each checked kept (real) object, only scale and surface: its placement among the
+    other real objects is real, but its new surroundings must still carry it. For each new object, whether
+    the verifier sees the wanted class in its box; for the whole image, the blend seam around the
+    generated region.
     """
     names = ctx.dataset.category_names()
-    boxes = candidate.boxes()
     surface_mask = ctx.surface(candidate.scene).mask
+    image_id = candidate.scene.id
     verdicts: list[Verdict] = []
     for index in candidate.checked:
-        position = index if index >= 0 else len(boxes) - len(candidate.new) + (-1 - index)
-        box, category_id = boxes[position]
-        others = [b for i, (b, _) in enumerate(boxes) if i != position]
+        if index >= 0:
+            ann = candidate.kept[index]
+            verdicts.append(scale(ann.bbox, names[ann.category_id], ctx.ground, ctx.limits, image_id=image_id))
+            verdicts.append(surface(ann.bbox, surface_mask, ctx.limits))
+            continue
+        j = -1 - index
+        obj = candidate.new[j]
+        others = [a.bbox for a in candidate.kept if not a.iscrowd] + [
+            n.bbox for i, n in enumerate(candidate.new) if i != j
+        ]
         verdicts += check_geometry(
-            box, names[category_id], others, ctx.ground, surface_mask, ctx.limits, image_id=candidate.scene.id
+            obj.bbox, names[obj.category_id], others, ctx.ground, surface_mask, ctx.limits, image_id=image_id
         )
     if ctx.verifier is not None:
         for obj in candidate.new:
