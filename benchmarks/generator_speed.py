@@ -1,6 +1,8 @@
 """Seconds per inpainted instance (one at a time and batched, blending included), fit time and memory.
 
-Inpainting: requests at boxes of real objects in held-out scenes, 10 and 20 DPM-Solver++ steps.
+Inpainting: requests at boxes of real objects in held-out scenes, 10-20 DPM-Solver++ steps, guidance 1
+and 2. Other processes on the machine inflate wall times (the report gives the load average); CPU seconds
+per instance with ``OMP_NUM_THREADS=1`` approximate the time on an otherwise idle single core.
 Fit: a short run (``--fit-steps``) on the training split into a temporary folder gives seconds per
 step and the process's peak resident memory (``resource.getrusage``); the default model's recorded
 training time is read from its metadata.
@@ -13,6 +15,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import platform
 import resource
 import tempfile
@@ -38,14 +41,15 @@ def requests_from(data, label: str, n: int) -> list[InpaintRequest]:
     return out
 
 
-def per_instance(generator, requests, *, steps: int, batched: bool) -> float:
-    started = time.perf_counter()
+def per_instance(generator, requests, *, steps: int, guidance: float, batched: bool) -> tuple[float, float]:
+    """Wall seconds and CPU seconds (all threads) per request."""
+    wall, cpu = time.perf_counter(), time.process_time()
     if batched:
-        generator.inpaint(requests, steps=steps, guidance=1.0)
+        generator.inpaint(requests, steps=steps, guidance=guidance)
     else:
         for request in requests:
-            generator.inpaint([request], steps=steps, guidance=1.0)
-    return (time.perf_counter() - started) / len(requests)
+            generator.inpaint([request], steps=steps, guidance=guidance)
+    return (time.perf_counter() - wall) / len(requests), (time.process_time() - cpu) / len(requests)
 
 
 def main() -> None:
@@ -55,19 +59,24 @@ def main() -> None:
     parser.add_argument("--held-out", type=Path, default=Path("seed_scenes/test.json"))
     parser.add_argument("--label", default="tractor")
     parser.add_argument("--batch", type=int, default=16)
-    parser.add_argument("--fit-steps", type=int, default=30)
+    parser.add_argument("--fit-steps", type=int, default=30, help="0 skips the short fit run")
     args = parser.parse_args()
 
     generator = load(args.model)
     requests = requests_from(load_dataset(args.held_out), args.label, args.batch)
     generator.inpaint(requests[:2], steps=2, guidance=1.0)  # warm-up: first calls allocate
-    report: dict = {"machine": f"{platform.processor() or platform.machine()}, {torch.get_num_threads()} threads"}
-    for steps in (10, 20):
-        report[f"steps_{steps}"] = {
-            "s_per_instance_batch_1": round(per_instance(generator, requests[:4], steps=steps, batched=False), 3),
-            f"s_per_instance_batch_{len(requests)}": round(
-                per_instance(generator, requests, steps=steps, batched=True), 3
-            ),
+    report: dict = {
+        "machine": f"{platform.processor() or platform.machine()}, {torch.get_num_threads()} threads",
+        "load_average_1min_before": os.getloadavg()[0],
+    }
+    for steps, guidance in ((10, 1.0), (12, 1.0), (20, 1.0), (12, 2.0)):
+        single = per_instance(generator, requests[:4], steps=steps, guidance=guidance, batched=False)
+        batched = per_instance(generator, requests, steps=steps, guidance=guidance, batched=True)
+        report[f"steps_{steps}_guidance_{guidance:g}"] = {
+            "wall_s_per_instance_batch_1": round(single[0], 3),
+            f"wall_s_per_instance_batch_{len(requests)}": round(batched[0], 3),
+            "cpu_s_per_instance_batch_1": round(single[1], 3),
+            f"cpu_s_per_instance_batch_{len(requests)}": round(batched[1], 3),
         }
     meta = json.loads((args.model / "rarefill_model.json").read_text())
     report["default_model"] = {
@@ -75,6 +84,9 @@ def main() -> None:
         "denoiser_train_minutes": round(meta.get("denoiser_train_seconds", float("nan")) / 60, 1),
         "command": meta["command"],
     }
+    if args.fit_steps == 0:
+        print(json.dumps(report, indent=2))
+        return
     with tempfile.TemporaryDirectory() as tmp:
         started = time.perf_counter()
         fit(load_dataset(args.train), out_dir=tmp, steps=args.fit_steps)
