@@ -81,9 +81,13 @@ def test_run_writes_coco_labels_with_provenance(tmp_path):
         new = [a for a in anns if a["rarefill"]["synthetic"]]
         kept = [a for a in anns if not a["rarefill"]["synthetic"]]
         assert 1 <= len(new) <= 2 and all(a["category_id"] == tractor for a in new)
-        # the source image's real annotations come along unchanged
+        # the source image's real annotations come along unchanged, except those the new object hides
         source = by_id[prov["source"]["image_id"]]
-        assert sorted(a["rarefill"]["source_annotation_id"] for a in kept) == sorted(a.id for a in source.annotations)
+        hidden = [d["annotation_id"] for d in prov["details"].get("dropped", [])]
+        carried = [a["rarefill"]["source_annotation_id"] for a in kept]
+        assert sorted(carried + hidden) == sorted(a.id for a in source.annotations)
+        originals = {a.id: a for a in source.annotations}
+        assert all(a["bbox"] == list(originals[a["rarefill"]["source_annotation_id"]].bbox) for a in kept)
         for a in new:
             x, y, w, h = a["bbox"]
             assert x >= 0 and y >= 0 and x + w <= image["width"] and y + h <= image["height"]
@@ -202,3 +206,20 @@ def test_kill_9_and_rerun_gives_the_uninterrupted_result(tmp_path):
     summary = fake_run(recipe, killed)
     assert summary.chunks_skipped >= 2
     assert folder_bytes(killed) == folder_bytes(tmp_path / "reference")
+
+
+def test_objects_hidden_by_an_insert_leave_the_labels_and_nearer_ones_are_never_painted_over(tmp_path):
+    fake_run(write_recipe(tmp_path, count=16))
+    out = tmp_path / "out"
+    labels = json.loads((out / "labels.json").read_text())
+    source = {s.id: s for s in load_dataset(SEED_SCENES / "train.json").scenes}
+    for image in labels["images"]:
+        new = [a for a in labels["annotations"] if a["image_id"] == image["id"] and a["rarefill"]["synthetic"]]
+        lowest_new = max(a["rarefill"]["requested_bbox"][1] + a["rarefill"]["requested_bbox"][3] for a in new)
+        for dropped in image["rarefill"]["details"].get("dropped", []):
+            ann = next(a for a in source[image["rarefill"]["source"]["image_id"]].annotations
+                       if a.id == dropped["annotation_id"])  # fmt: skip
+            assert ann.bottom_row <= lowest_new  # only farther objects end up hidden
+    manifest = [json.loads(line) for line in (out / "manifest.jsonl").read_text().splitlines()]
+    occlusions = [m for m in manifest if m["rejected_by"] == ["occlusion"]]
+    assert all("nearer annotation" in m["reason"] for m in occlusions)

@@ -18,12 +18,18 @@ import numpy as np
 from ..dataset import Dataset
 from ..filters import FilterLimits
 from ..generator import InpaintRequest
+from ..generator.windows import box_mask, object_mask_box
 from ..placement import sample_box
 from ..plan import Job, derive_seed
 from ..recipe import StageSpec
 from ..refit import refit_box
 from ..surface import Surface
 from .base import Candidate, Draft, Failure, NewObject, StageContext
+
+HIDDEN_SHARE = 0.5
+"""A farther object whose box is repainted by this share or more is hidden behind the new object and
+leaves the labels (listed in provenance); less hidden, it stays labelled, as partly occluded objects are
+in real data."""
 
 
 def eligible(dataset: Dataset, spec: StageSpec, limits: FilterLimits) -> list[tuple[int, int]]:
@@ -40,17 +46,9 @@ def object_mask(box: Sequence[float], shape: tuple[int, int], margin: float) -> 
     """The region the generator may repaint for an object in ``box``: the box grown by ``margin``.
 
     Grown by ``margin`` x width on each side and ``margin`` x height on top, and by 2 px below only, so that
-    the object's footprint stays where the placement put it.
+    the object's footprint stays where the placement put it. The generator was trained on this geometry.
     """
-    x, y, w, h = box
-    height, width = shape
-    c0 = max(0, int(np.floor(x - margin * w)))
-    c1 = min(width, int(np.ceil(x + w + margin * w)))
-    r0 = max(0, int(np.floor(y - margin * h)))
-    r1 = min(height, int(np.ceil(y + h + 2)))
-    mask = np.zeros(shape, dtype=bool)
-    mask[r0:r1, c0:c1] = True
-    return mask
+    return box_mask(shape, object_mask_box(box, margin=margin))
 
 
 def mask_box(mask: np.ndarray) -> tuple[float, float, float, float]:
@@ -121,9 +119,33 @@ def complete(draft_: Draft, frames: Sequence[np.ndarray], ctx: StageContext) -> 
             return Failure("present", f"nothing was generated under the requested box {_rounded(placement.box)}")
         extra = {"expected_height_px": round(placement.expected_height, 2), "height_sd": round(placement.height_sd, 3)}
         new.append(NewObject(category_id, box, placement.box, extra))
-    kept = tuple(draft_.scene.annotations)
+
+    # 6. keep the labels true under the new pixels: a new object stands in front of farther objects only
+    kept, dropped = [], []
+    for ann in draft_.scene.annotations:
+        hidden = _covered_share(ann.bbox, changed) if not ann.iscrowd else 0.0
+        nearer = [p for r, p in zip(draft_.requests, draft_.state["placements"], strict=True)
+                  if _covered_share(ann.bbox, r.mask) > 0 and ann.bottom_row > p.box[1] + p.box[3]]  # fmt: skip
+        if nearer:
+            reason = f"the new object would be painted over nearer annotation {ann.id} ({hidden:.0%} of its box)"
+            return Failure("occlusion", reason)
+        if hidden >= HIDDEN_SHARE:
+            dropped.append((ann, f"hidden behind an inserted object ({hidden:.0%} of its box repainted)"))
+        else:
+            kept.append(ann)
     checked = tuple(-1 - i for i in range(len(new)))
-    return Candidate(out, draft_.scene, kept, tuple(new), changed, checked, details={"objects": len(new)})
+    details = {"objects": len(new)}
+    return Candidate(out, draft_.scene, tuple(kept), tuple(new), changed, checked, tuple(dropped), details)
+
+
+def _covered_share(box: Sequence[float], mask: np.ndarray) -> float:
+    """Share of the box's pixels that lie in ``mask``."""
+    x, y, w, h = box
+    r0, r1 = max(0, int(np.floor(y))), min(mask.shape[0], int(np.ceil(y + h)))
+    c0, c1 = max(0, int(np.floor(x))), min(mask.shape[1], int(np.ceil(x + w)))
+    if r1 <= r0 or c1 <= c0:
+        return 0.0
+    return float(mask[r0:r1, c0:c1].mean())
 
 
 def _rounded(box: Sequence[float]) -> list[float]:
