@@ -22,7 +22,7 @@ from pipeline.stages import Candidate, Failure, StageContext, rebackground, run
 from pipeline.surface import mask_for
 
 from .conftest import SEED_SCENES
-from .fakes import BlockGenerator
+from .fakes import BlockGenerator, fake_context
 
 CLASSES = ("background", "car", "van", "bus", "tractor", "works_trailer")
 
@@ -65,16 +65,7 @@ def seeds():
 
 def context(seeds, verifier=None) -> StageContext:
     dataset, ground, surfaces = seeds
-    return StageContext(
-        dataset=dataset,
-        generator=BlockGenerator(),
-        ground=ground,
-        limits=FilterLimits(),
-        surface=lambda scene: surfaces[scene.id],
-        aspect_ratios={},
-        footprint_rows=(0.0, 1e9),
-        verifier=verifier,
-    )
+    return fake_context(dataset, ground, verifier=verifier, surfaces=surfaces)
 
 
 def remade(ctx, stage, source, seed=11):

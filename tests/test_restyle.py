@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import json
 import math
-import warnings
 from pathlib import Path
 
 import numpy as np
@@ -20,10 +19,9 @@ from pipeline.plan import Job
 from pipeline.recipe import STAGE_OPTIONS, StageSpec, load_recipe
 from pipeline.runner import run_recipe
 from pipeline.stages import Candidate, Failure, StageContext, restyle, run
-from pipeline.surface import mask_for
 
 from .conftest import SEED_SCENES
-from .fakes import AlwaysVerifier, BlockGenerator
+from .fakes import AlwaysVerifier, BlockGenerator, fake_context
 
 
 def spec(target: str = "tractor", **options) -> StageSpec:
@@ -33,19 +31,7 @@ def spec(target: str = "tractor", **options) -> StageSpec:
 
 
 def context(dataset, ground) -> StageContext:
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        surfaces = {s.id: mask_for(s, dataset=dataset) for s in dataset.scenes}
-    return StageContext(
-        dataset=dataset,
-        generator=BlockGenerator(),
-        ground=ground,
-        limits=FilterLimits(),
-        surface=lambda scene: surfaces[scene.id],
-        aspect_ratios={},
-        footprint_rows=(0.0, 1e9),
-        verifier=None,
-    )
+    return fake_context(dataset, ground)
 
 
 # --------------------------------------------------------------------------------------------------
