@@ -110,8 +110,9 @@ def markdown_table(result: ProbeResult, rows: Sequence[dict[str, Any]]) -> str:
 def save_share_plot(result: ProbeResult, rows: Sequence[dict[str, Any]], path: str | os.PathLike[str]) -> None:
     """Rare-class AP50 against synthetic share: one panel for their mean and one per rare class.
 
-    Lines join the means per kind (starting at the real-only model, share 0); error bars are one sample
-    sd; small dots are the single seeds.
+    Lines join the means per kind (starting at the real-only model, share 0), drawn at the share each
+    merge reached (below the requested one when too few synthetic images existed); error bars are one
+    sample sd; small dots are the single seeds.
     """
     panels = [("rare classes (mean)", None), *((name, name) for name in result.rare_classes)]
     figure = Figure(figsize=(4.2 * len(panels), 3.6), layout="constrained")
@@ -144,14 +145,14 @@ def _plot_kind(ax, result: ProbeResult, kind: str, rows: Sequence[dict[str, Any]
         metric = row["rare_ap50"] if name is None else row["per_class_ap50"][name]
         if metric.mean is None:
             continue
-        shares.append(row["share"])
+        shares.append(row["reached_share"].mean)
         means.append(metric.mean)
         sds.append(metric.sd or 0.0)
     colour = _COLOURS[kind]
     ax.errorbar(shares, means, yerr=sds, color=colour, marker="o", capsize=3, label=f"real + {kind} synthetic")
     for run in result.runs:
         if run.kind == kind and value(run) is not None:
-            ax.plot(run.share, value(run), ".", color=colour, alpha=0.35)
+            ax.plot(run.reached_share, value(run), ".", color=colour, alpha=0.35)
         elif run.kind == "real" and kind == "filtered" and value(run) is not None:
             ax.plot(0.0, value(run), ".", color=_COLOURS["real"], alpha=0.35)
 
