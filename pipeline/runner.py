@@ -32,7 +32,7 @@ from .provenance import KEY, file_sha256, image_provenance, kept_annotation_prov
 from .recipe import Recipe
 from .stages import Candidate, Draft, Failure, StageContext, stage_module
 from .surface import Surface, mask_for
-from .writer import RUN_FORMAT, RunFolder, assemble
+from .writer import RUN_FORMAT, RunFolder, assemble, read_chunks
 
 
 @dataclass(frozen=True)
@@ -197,8 +197,6 @@ def _count(records: Sequence[dict], state: Progress) -> None:
 
 
 def _count_committed(folder: RunFolder, chunks: Sequence[int], state: Progress) -> None:
-    from .writer import read_chunks
-
     for record in read_chunks(folder.root, chunks):
         _count(record["jobs"], state)
 
@@ -409,10 +407,11 @@ def _scene_sha256(scene: Scene) -> str:
 
 
 def _surface_cache(dataset: Dataset) -> Callable[[Scene], Surface]:
+    scenes = {s.id: s for s in dataset.scenes}
+
     @lru_cache(maxsize=256)
     def surface(scene_id: int) -> Surface:
-        scene = next(s for s in dataset.scenes if s.id == scene_id)
-        return mask_for(scene, dataset=dataset)
+        return mask_for(scenes[scene_id], dataset=dataset)
 
     return lambda scene: surface(scene.id)
 
