@@ -26,6 +26,10 @@ from ..refit import refit_box
 from ..surface import Surface
 from .base import Candidate, Draft, Failure, NewObject, StageContext
 
+OCCLUSION_TRIES = 8
+"""Placements drawn per object until its repainted region leaves every nearer object alone; the last one
+is kept anyway and the occlusion check in :func:`complete` rejects it, with the reason."""
+
 HIDDEN_SHARE = 0.5
 """A farther object whose box is repainted by this share or more is hidden behind the new object and
 leaves the labels (listed in provenance); less hidden, it stays labelled, as partly occluded objects are
@@ -77,12 +81,17 @@ def draft(job: Job, attempt: int, spec: StageSpec, ctx: StageContext) -> Draft |
     # 2. place the objects one after another, each apart from all earlier ones, where real objects stand
     surface = within_rows(ctx.surface(scene), ctx.footprint_rows)
     boxes = [a.bbox for a in scene.annotations if not a.iscrowd]
+    shape = (scene.height, scene.width)
+    margin = spec.options["mask_margin"]
     placed = []
     for _ in range(wanted):
-        placement = sample_box(
-            scene, spec.target_class, ctx.ground, surface, rng, ctx.limits,
-            aspect_ratios=ctx.aspect_ratios, existing_boxes=boxes,
-        )  # fmt: skip
+        for _ in range(OCCLUSION_TRIES):
+            placement = sample_box(
+                scene, spec.target_class, ctx.ground, surface, rng, ctx.limits,
+                aspect_ratios=ctx.aspect_ratios, existing_boxes=boxes,
+            )  # fmt: skip
+            if not placement or not _paints_over_nearer(placement, scene.annotations, shape, margin):
+                break
         if not placement:
             if len(placed) >= low:
                 break
@@ -92,13 +101,23 @@ def draft(job: Job, attempt: int, spec: StageSpec, ctx: StageContext) -> Draft |
 
     # 3. build one mask and one request per object
     image = scene.load_rgb()
-    margin = spec.options["mask_margin"]
     requests = []
     for i, placement in enumerate(placed):
         mask = object_mask(placement.box, image.shape[:2], margin)
         seed = derive_seed(job.attempt_seed(attempt), "object", i)
         requests.append(InpaintRequest(image, mask, mask_box(mask), spec.target_class, seed))
     return Draft(spec, scene, image, tuple(requests), {"placements": tuple(placed)})
+
+
+def _paints_over_nearer(placement, annotations, shape: tuple[int, int], margin: float) -> bool:
+    """Would the new object's repainted region cover part of an object that stands nearer the camera?"""
+    return _nearer_covered(object_mask(placement.box, shape, margin), placement.box, annotations) is not None
+
+
+def _nearer_covered(mask: np.ndarray, box: Sequence[float], annotations):
+    """The first annotation standing nearer than ``box`` (lower bottom edge) that ``mask`` covers, or None."""
+    bottom = box[1] + box[3]
+    return next((a for a in annotations if a.bottom_row > bottom and _covered_share(a.bbox, mask) > 0), None)
 
 
 def complete(draft_: Draft, frames: Sequence[np.ndarray], ctx: StageContext) -> Candidate | Failure:
@@ -121,14 +140,17 @@ def complete(draft_: Draft, frames: Sequence[np.ndarray], ctx: StageContext) -> 
         new.append(NewObject(category_id, box, placement.box, extra))
 
     # 6. keep the labels true under the new pixels: a new object stands in front of farther objects only
+    for request, placement in zip(draft_.requests, draft_.state["placements"], strict=True):
+        nearer = _nearer_covered(request.mask, placement.box, draft_.scene.annotations)
+        if nearer is not None:
+            share = _covered_share(nearer.bbox, request.mask)
+            return Failure(
+                "occlusion",
+                f"the new object would be painted over nearer annotation {nearer.id} ({share:.0%} of its box)",
+            )
     kept, dropped = [], []
     for ann in draft_.scene.annotations:
         hidden = _covered_share(ann.bbox, changed) if not ann.iscrowd else 0.0
-        nearer = [p for r, p in zip(draft_.requests, draft_.state["placements"], strict=True)
-                  if _covered_share(ann.bbox, r.mask) > 0 and ann.bottom_row > p.box[1] + p.box[3]]  # fmt: skip
-        if nearer:
-            reason = f"the new object would be painted over nearer annotation {ann.id} ({hidden:.0%} of its box)"
-            return Failure("occlusion", reason)
         if hidden >= HIDDEN_SHARE:
             dropped.append((ann, f"hidden behind an inserted object ({hidden:.0%} of its box repainted)"))
         else:
