@@ -75,10 +75,6 @@ class RunFolder:
             stale.unlink(missing_ok=True)
         return folder
 
-    def identity(self) -> dict[str, Any]:
-        """The run.json of this folder."""
-        return json.loads((self.root / "run.json").read_text(encoding="utf-8"))
-
     def _check_identity(self, identity: dict[str, Any]) -> None:
         path = self.root / "run.json"
         if path.exists():

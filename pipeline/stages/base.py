@@ -8,7 +8,7 @@ A stage works in two steps so that the runner can denoise the windows of many jo
 
 from __future__ import annotations
 
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -97,11 +97,6 @@ class Candidate:
     dropped: tuple[tuple[Annotation, str], ...] = ()
     details: Mapping[str, Any] = field(default_factory=dict)
 
-    def boxes(self) -> list[tuple[tuple[float, float, float, float], int]]:
-        """Every labelled box with its category id: kept ones first, then new ones."""
-        kept = [(a.bbox, a.category_id) for a in self.kept if not a.iscrowd]
-        return kept + [(n.bbox, n.category_id) for n in self.new]
-
 
 @dataclass(frozen=True)
 class Failure:
@@ -110,6 +105,3 @@ class Failure:
     filter: str
     reason: str
     details: Mapping[str, Any] = field(default_factory=dict)
-
-
-Sources = Sequence[tuple[int, int]]
