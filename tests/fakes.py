@@ -18,6 +18,7 @@ class BlockGenerator:
 
     def __init__(self, classes: Sequence[str] = ("car", "van", "bus", "tractor", "works_trailer"), *, inset=0.1):
         self.classes = tuple(classes)
+        self.accepts_exemplar = False
         self.inset = inset
         self.calls: list[int] = []
 

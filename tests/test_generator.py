@@ -6,6 +6,7 @@ model is only used by the slow-marked test.
 
 from __future__ import annotations
 
+import dataclasses
 import json
 from pathlib import Path
 
@@ -19,6 +20,7 @@ from pipeline.errors import ModelError
 from pipeline.generator import BACKGROUND, InpaintRequest, fit, load
 from pipeline.generator.examples import load_examples
 from pipeline.generator.model import DenoiserConfig, label_table, sampling_scheduler, training_scheduler
+from pipeline.generator.request import check_request
 from pipeline.generator.train import TrainSettings, _train_step, make_batch
 from pipeline.generator.verifier import crop_box, load_verifier
 from pipeline.generator.windows import (
@@ -284,6 +286,23 @@ def test_inpaint_rejects_bad_requests(tiny_model, scenes):
         generator.inpaint([InpaintRequest(good.image, good.mask, good.box, "plain", 0, "fog")], steps=2, guidance=1.0)
     with pytest.raises(ValueError, match="guidance"):
         generator.inpaint([good], steps=2, guidance=0.5)
+
+
+def test_check_request_validates_exemplars(scenes):
+    good = _request(scenes)
+    alpha = good.mask.astype(np.float32)
+    with_exemplar = dataclasses.replace(good, exemplar=good.image.copy(), exemplar_alpha=alpha)
+    check_request(with_exemplar, 0, ("plain", "striped"), accepts_exemplar=True)
+    with pytest.raises(ValueError, match="does not take exemplars"):
+        check_request(with_exemplar, 0, ("plain", "striped"))
+    with pytest.raises(ValueError, match="go together"):
+        check_request(dataclasses.replace(good, exemplar=good.image), 0, ("plain", "striped"), accepts_exemplar=True)
+    with pytest.raises(ValueError, match=r"exemplar must be"):
+        bad = dataclasses.replace(with_exemplar, exemplar=good.image[:-1])
+        check_request(bad, 0, ("plain", "striped"), accepts_exemplar=True)
+    with pytest.raises(ValueError, match=r"\[0, 1\]"):
+        bad = dataclasses.replace(with_exemplar, exemplar_alpha=alpha * 2)
+        check_request(bad, 0, ("plain", "striped"), accepts_exemplar=True)
 
 
 def test_info_names_kind_classes_window_and_hash(tiny_model):

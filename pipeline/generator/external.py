@@ -33,6 +33,8 @@ class PipelineGenerator:
         Where the pipeline was loaded from (hashed lazily for :meth:`info`).
     """
 
+    accepts_exemplar = False
+
     def __init__(
         self, pipeline: StableDiffusionInpaintPipeline, prompts: Mapping[str, str], *, folder: Path | None = None
     ) -> None:

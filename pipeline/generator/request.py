@@ -31,6 +31,14 @@ class InpaintRequest:
         Seeds this request's own noise, so its result does not depend on the rest of the batch.
     condition : str or None
         A scene condition label; no generator supports one yet, so it must be ``None``.
+    exemplar : (H, W, 3) uint8 ndarray or None
+        Exemplar-guided insertion: the full frame with a real instance of ``label`` already placed in it
+        (alpha-composited over the scene inside ``exemplar_alpha``, at the image's own resolution). A
+        generator whose ``accepts_exemplar`` is true repaints ``mask`` conditioned on it, so that the object
+        takes the scene's light and colour, casts a contact shadow and meets the scene at a clean boundary.
+        The caller keeps the exemplar's high frequencies; the generator supplies the low ones.
+    exemplar_alpha : (H, W) float32 ndarray in [0, 1] or None
+        The placed exemplar's silhouette (1 inside); given exactly when ``exemplar`` is.
     """
 
     image: np.ndarray
@@ -39,6 +47,8 @@ class InpaintRequest:
     label: str
     seed: int
     condition: str | None = None
+    exemplar: np.ndarray | None = None
+    exemplar_alpha: np.ndarray | None = None
 
 
 @runtime_checkable
@@ -46,6 +56,8 @@ class Generator(Protocol):
     """What the stages need from a generator (our trained model, a user's pipeline, or a test fake)."""
 
     classes: tuple[str, ...]
+    accepts_exemplar: bool
+    """Whether :meth:`inpaint` uses a request's ``exemplar`` (others refuse requests that carry one)."""
 
     def inpaint(self, requests: Sequence[InpaintRequest], *, steps: int, guidance: float) -> list[np.ndarray]:
         """Inpaint every request (batched); return one full ``(H, W, 3) uint8`` frame per request."""
@@ -56,7 +68,9 @@ class Generator(Protocol):
         ...
 
 
-def check_request(request: InpaintRequest, index: int, classes: Sequence[str]) -> None:
+def check_request(
+    request: InpaintRequest, index: int, classes: Sequence[str], *, accepts_exemplar: bool = False
+) -> None:
     """Raise ``ValueError`` naming ``requests[index]`` and the field when a request is unusable."""
     where = f"requests[{index}]"
     image, mask = request.image, request.mask
@@ -80,6 +94,24 @@ def check_request(request: InpaintRequest, index: int, classes: Sequence[str]) -
         raise ValueError(f"{where}.seed must be an integer >= 0, got {request.seed!r}")
     if not mask.any():
         raise ValueError(f"{where}.mask is empty: nothing to inpaint")
+    _check_exemplar(request, where, accepts_exemplar)
+
+
+def _check_exemplar(request: InpaintRequest, where: str, accepts_exemplar: bool) -> None:
+    exemplar, alpha = request.exemplar, request.exemplar_alpha
+    if exemplar is None and alpha is None:
+        return
+    if not accepts_exemplar:
+        raise ValueError(f"{where}.exemplar: this generator does not take exemplars; pass None")
+    if exemplar is None or alpha is None:
+        raise ValueError(f"{where}: exemplar and exemplar_alpha go together; got only one of them")
+    shape = request.image.shape
+    if not isinstance(exemplar, np.ndarray) or exemplar.dtype != np.uint8 or exemplar.shape != shape:
+        raise ValueError(f"{where}.exemplar must be a {shape} uint8 array, got {_describe(exemplar)}")
+    if not isinstance(alpha, np.ndarray) or alpha.dtype != np.float32 or alpha.shape != shape[:2]:
+        raise ValueError(f"{where}.exemplar_alpha must be a {shape[:2]} float32 array, got {_describe(alpha)}")
+    if not (np.isfinite(alpha).all() and alpha.min() >= 0.0 and alpha.max() <= 1.0) or not alpha.any():
+        raise ValueError(f"{where}.exemplar_alpha must lie in [0, 1] and be non-zero somewhere")
 
 
 def _describe(value: object) -> str:

@@ -45,6 +45,8 @@ class DiffusionGenerator:
         Run the UNet under bfloat16 autocast (faster on CPUs with native bf16).
     """
 
+    accepts_exemplar = False
+
     def __init__(
         self,
         unet: UNet2DModel,
