@@ -26,25 +26,36 @@ References
 """
 
 from .boxes import BORDER_PX, is_usable, usable_boxes
+from .cameras import CameraGroups, ClassHeight, camera_label, ground_for, scene_intrinsics
 from .distances import ground_distance, lateral_offset
-from .fit import MIN_FIT_BOXES, MIN_SPREAD, PRIOR_LOG_SD, fit_ground
-from .model import ClassGround, GroundModel, HeightBand
-from .priors import PRIOR_HEIGHTS_M, normalise_class_name, prior_heights
+from .fit import MIN_FIT_BOXES, MIN_SPREAD, PRIOR_LOG_SD, fit_cameras, fit_ground
+from .model import ClassGround, GroundModel, HeightBand, Intrinsics
+from .priors import HEIGHT_KEYS, PRIOR_HEIGHTS_M, box_height_m, measured_heights, normalise_class_name, prior_heights
 
 __all__ = [
     "BORDER_PX",
+    "HEIGHT_KEYS",
     "MIN_FIT_BOXES",
     "MIN_SPREAD",
     "PRIOR_HEIGHTS_M",
     "PRIOR_LOG_SD",
+    "CameraGroups",
     "ClassGround",
+    "ClassHeight",
     "GroundModel",
     "HeightBand",
+    "Intrinsics",
+    "box_height_m",
+    "camera_label",
+    "fit_cameras",
     "fit_ground",
     "ground_distance",
+    "ground_for",
     "is_usable",
     "lateral_offset",
+    "measured_heights",
     "normalise_class_name",
     "prior_heights",
+    "scene_intrinsics",
     "usable_boxes",
 ]

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass
 
 import numpy as np
@@ -20,6 +21,10 @@ class Boxes:
     height: np.ndarray
     cls: np.ndarray
     image: np.ndarray
+
+    def subset(self, keep: np.ndarray) -> Boxes:
+        """The boxes where ``keep`` ((N,) bool) is true; image indices unchanged."""
+        return Boxes(self.bottom[keep], self.height[keep], self.cls[keep], self.image[keep])
 
 
 def usable_boxes(dataset: Dataset) -> dict[str, tuple[np.ndarray, np.ndarray]]:
@@ -45,12 +50,19 @@ def is_usable(ann: Annotation, scene: Scene) -> bool:
     return inside and not ann.iscrowd
 
 
-def collect_boxes(dataset: Dataset, names: list[str]) -> tuple[Boxes, list[int]]:
-    """Usable boxes of the classes ``names`` as arrays, and the image id of each image index."""
+def collect_boxes(
+    dataset: Dataset, names: list[str], group_of_image: Mapping[int, int]
+) -> tuple[Boxes, list[int], np.ndarray]:
+    """Usable boxes of the classes ``names`` in the images ``group_of_image`` names, as arrays.
+
+    Returns the boxes, the image id of each image index, and the group index of each image index.
+    """
     class_index = {c.id: names.index(c.name) for c in dataset.categories if c.name in names}
     image_ids: list[int] = []
     bottom, heights, cls, image = [], [], [], []
     for scene in dataset.scenes:
+        if scene.id not in group_of_image:
+            continue
         picked = [a for a in scene.annotations if a.category_id in class_index and is_usable(a, scene)]
         if not picked:
             continue
@@ -66,4 +78,4 @@ def collect_boxes(dataset: Dataset, names: list[str]) -> tuple[Boxes, list[int]]
         cls=np.asarray(cls, dtype=np.int64),
         image=np.asarray(image, dtype=np.int64),
     )
-    return boxes, image_ids
+    return boxes, image_ids, np.asarray([group_of_image[i] for i in image_ids], dtype=np.int64)

@@ -14,6 +14,34 @@ MIN_FIT_BOXES = 8
 Below about 8 boxes the robust spread (a median absolute deviation) is too unstable to set limits on."""
 
 _FORMAT = "rarefill.ground/1"
+Source = Literal["fitted", "prior", "labels"]
+
+
+@dataclass(frozen=True)
+class Intrinsics:
+    """A calibrated pinhole camera's focal lengths and principal point, in pixels (rows top-down).
+
+    For a camera pitched down by ``theta`` the horizon lies at ``cy - fy tan(theta)``: at the principal row
+    ``cy`` for a level camera (Hartley & Zisserman, "Multiple View Geometry", 2nd ed., 2004).
+    """
+
+    fx: float
+    fy: float
+    cx: float
+    cy: float
+
+    def __post_init__(self) -> None:
+        if not all(isinstance(v, float) and math.isfinite(v) for v in (self.fx, self.fy, self.cx, self.cy)):
+            raise ValueError(f"intrinsics must be finite numbers, got {self}")
+        if not (self.fx > 0 and self.fy > 0):
+            raise ValueError(f"focal lengths fx, fy must be > 0, got {self.fx:g}, {self.fy:g}")
+
+    def pitch_deg(self, horizon_row: float) -> float:
+        """Downward pitch (degrees) that puts the horizon at ``horizon_row``: ``atan((cy - v_h) / fy)``."""
+        return math.degrees(math.atan((self.cy - horizon_row) / self.fy))
+
+    def to_dict(self) -> dict[str, float]:
+        return {"fx": self.fx, "fy": self.fy, "cx": self.cx, "cy": self.cy}
 
 
 @dataclass(frozen=True)
@@ -26,17 +54,20 @@ class ClassGround:
         ``H / h_cam``: the class's real height in units of the camera height.
     spread : float
         Robust standard deviation of ``log(h / expected)`` over the class's boxes (1.4826 x the median
-        absolute deviation), at least :data:`MIN_SPREAD`; for a prior class, :data:`PRIOR_LOG_SD`
+        absolute deviation), at least :data:`MIN_SPREAD`; for a class scaled from a known height, the
+        height's spread (:data:`PRIOR_LOG_SD` for a prior, the 3D labels' own for measured heights)
         combined with the disagreement of the fitted classes' camera-height estimates.
     n_boxes : int
-        Boxes that carried the fit (inliers after robust reweighting); 0..n for a prior class.
-    source : {"fitted", "prior"}
+        Boxes that carried the fit (inliers after robust reweighting); 0..n for a scaled class.
+    source : {"fitted", "prior", "labels"}
+        Fitted from the boxes, or its real height (a prior, or the data's own 3D labels) over the camera
+        height.
     """
 
     height_ratio: float
     spread: float
     n_boxes: int
-    source: Literal["fitted", "prior"]
+    source: Source
 
 
 @dataclass(frozen=True)
@@ -50,7 +81,7 @@ class HeightBand:
 
 @dataclass(frozen=True)
 class GroundModel:
-    """A fitted ground-plane model of one data set (one image size; a horizon per image).
+    """A fitted ground-plane model of one camera group (one image size; a horizon per image).
 
     Attributes
     ----------
@@ -59,16 +90,24 @@ class GroundModel:
     classes : mapping of str to ClassGround
         Per class name. A class absent here had neither enough boxes nor a way to scale a prior.
     camera_height_m : float or None
-        Camera height above the ground estimated from fitted classes' ratios and their prior heights
-        (``h_cam = H_prior / r_c``, log-mean weighted by boxes used); None when no fitted class has a prior.
+        Camera height above the ground estimated from fitted classes' ratios and their known heights
+        (``h_cam = H / r_c``, log-mean weighted by boxes used; 3D-label heights before priors); None when no
+        fitted class has a known height.
     image_width, image_height : int
         Size of the images the model was fitted on (pixels).
     prior_heights_m : mapping of str to float
-        The prior heights used (for provenance).
+        The known heights used (3D labels, else priors; for provenance).
     image_horizons : mapping of int to float
         Horizon row of each fitted image (by image id) that had boxes to tell it.
     horizon_sd_px : float
         Spread of the per-image horizons around ``horizon_row`` (pixels).
+    camera : str
+        The camera group's name (see :func:`pipeline.geometry.cameras.camera_label`); "" for a hand-made model.
+    intrinsics : Intrinsics or None
+        The group's calibration when the data gives one: distances then use its focal length and
+        principal point.
+    horizon_source : {"fitted", "principal row"}
+        Fitted from the boxes, or (a group with too few boxes to tell it) the calibrated principal row.
     """
 
     horizon_row: float
@@ -79,6 +118,9 @@ class GroundModel:
     prior_heights_m: Mapping[str, float] = field(default_factory=dict)
     image_horizons: Mapping[int, float] = field(default_factory=dict)
     horizon_sd_px: float = 0.0
+    camera: str = ""
+    intrinsics: Intrinsics | None = None
+    horizon_source: Literal["fitted", "principal row"] = "fitted"
 
     def horizon_for(self, image_id: int | None = None) -> float:
         """Horizon row of image ``image_id`` if the fit saw it, else the data set's ``horizon_row``."""
@@ -155,6 +197,9 @@ class GroundModel:
             "prior_heights_m": dict(self.prior_heights_m),
             "horizon_sd_px": self.horizon_sd_px,
             "image_horizons": {str(k): v for k, v in self.image_horizons.items()},
+            "camera": self.camera,
+            "intrinsics": None if self.intrinsics is None else self.intrinsics.to_dict(),
+            "horizon_source": self.horizon_source,
         }
 
     @classmethod
@@ -173,6 +218,10 @@ class GroundModel:
                 for name, c in data["classes"].items()
             }
             camera = data["camera_height_m"]
+            intrinsics = data.get("intrinsics")
+            horizon_source = data.get("horizon_source", "fitted")
+            if horizon_source not in ("fitted", "principal row"):
+                raise ValueError(f"horizon_source must be 'fitted' or 'principal row', got {horizon_source!r}")
             return cls(
                 horizon_row=float(data["horizon_row"]),
                 classes=classes,
@@ -182,6 +231,11 @@ class GroundModel:
                 prior_heights_m={str(k): float(v) for k, v in data.get("prior_heights_m", {}).items()},
                 image_horizons={int(k): float(v) for k, v in data.get("image_horizons", {}).items()},
                 horizon_sd_px=float(data.get("horizon_sd_px", 0.0)),
+                camera=str(data.get("camera", "")),
+                intrinsics=None
+                if intrinsics is None
+                else Intrinsics(**{k: float(intrinsics[k]) for k in "fx fy cx cy".split()}),
+                horizon_source=horizon_source,
             )
         except KeyError as exc:
             raise ValueError(f"ground model: required key {exc.args[0]!r} is missing") from None
@@ -189,9 +243,8 @@ class GroundModel:
             raise ValueError(f"ground model: malformed value ({exc})") from None
 
 
-def _source(value: Any) -> Literal["fitted", "prior"]:
-    if value == "fitted":
-        return "fitted"
-    if value == "prior":
-        return "prior"
-    raise ValueError(f"ground model: class source must be 'fitted' or 'prior', got {value!r}")
+def _source(value: Any) -> Source:
+    for known in ("fitted", "prior", "labels"):
+        if value == known:
+            return known
+    raise ValueError(f"ground model: class source must be 'fitted', 'prior' or 'labels', got {value!r}")
