@@ -27,7 +27,7 @@ References
 
 from .boxes import BORDER_PX, is_usable, usable_boxes
 from .cameras import CameraGroups, ClassHeight, camera_label, ground_for, scene_intrinsics
-from .distances import ground_distance, lateral_offset
+from .distances import focal_length, ground_distance, lateral_offset
 from .fit import MIN_FIT_BOXES, MIN_SPREAD, PRIOR_LOG_SD, fit_cameras, fit_ground
 from .model import ClassGround, GroundModel, HeightBand, Intrinsics
 from .priors import HEIGHT_KEYS, PRIOR_HEIGHTS_M, box_height_m, measured_heights, normalise_class_name, prior_heights
@@ -49,6 +49,7 @@ __all__ = [
     "camera_label",
     "fit_cameras",
     "fit_ground",
+    "focal_length",
     "ground_distance",
     "ground_for",
     "is_usable",

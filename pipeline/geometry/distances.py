@@ -7,9 +7,35 @@ Hartley, Zisserman, "Multiple View Geometry in Computer Vision", 2nd ed., 2004.
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 
 from .model import GroundModel
+
+ASSUMED_HFOV_DEG = 60.0
+"""Horizontal field of view assumed when the focal length is not given: forward vehicle cameras span
+about 50-90 degrees (from memory); the focal length only scales distances along the road in the gap
+filter, never the scale or surface filters."""
+
+
+def focal_from_fov(width: int, *, hfov_deg: float = ASSUMED_HFOV_DEG) -> float:
+    """Focal length (px) of an image ``width`` px wide with horizontal field of view ``hfov_deg``.
+
+    ``f = (W / 2) / tan(hfov / 2)`` (pinhole; Hartley & Zisserman 2004).
+    """
+    if not 0 < hfov_deg < 180:
+        raise ValueError(f"hfov_deg must be in (0, 180), got {hfov_deg}")
+    return (width / 2) / math.tan(math.radians(hfov_deg) / 2)
+
+
+def focal_length(ground: GroundModel) -> float:
+    """Vertical focal length (px) of the model's camera: its calibration's ``fy``, else assumed from the
+    field of view (:func:`focal_from_fov`). Box height against row does not need it (it cancels); ground
+    distances do."""
+    if ground.intrinsics is not None:
+        return ground.intrinsics.fy
+    return focal_from_fov(ground.image_width)
 
 
 def ground_distance(
@@ -66,9 +92,9 @@ def lateral_offset(
 ) -> float | np.ndarray:
     """Sideways position ``X`` (metres, right positive) of the ground point at image ``(bottom_row, col)``.
 
-    ``X = (u - c_x) Z / f = (u - c_x) h_cam / (v_b - v_h)`` with the principal point ``c_x`` assumed at
-    the image centre; the focal length cancels, so only the camera height is needed. ``image_id`` as in
-    :func:`ground_distance`.
+    ``X = (u - c_x) Z / f_x = (u - c_x) (f_y / f_x) h_cam / (v_b - v_h)`` with the principal point ``c_x``
+    from the model's calibration, else at the image centre (and ``f_x = f_y``); the focal length
+    otherwise cancels, so only the camera height is needed. ``image_id`` as in :func:`ground_distance`.
 
     References
     ----------
@@ -79,7 +105,10 @@ def lateral_offset(
     depth = np.asarray(bottom_row, dtype=np.float64) - horizon
     if not np.all(depth > 0):
         raise ValueError(f"bottom row(s) at or above the horizon row {horizon:.1f} have no ground position")
-    x = (np.asarray(col, dtype=np.float64) - ground.image_width / 2) * camera / depth
+    centre, aspect = ground.image_width / 2, 1.0
+    if ground.intrinsics is not None:
+        centre, aspect = ground.intrinsics.cx, ground.intrinsics.fy / ground.intrinsics.fx
+    x = (np.asarray(col, dtype=np.float64) - centre) * aspect * camera / depth
     return float(x) if x.ndim == 0 else x
 
 
