@@ -22,6 +22,10 @@ PRIOR_LOG_SD = 0.15
 """Spread (sd of log height) given to a class scaled from its prior height: Hoiem et al.'s car prior has
 sd 0.21 m on 1.59 m (0.13), rounded up because the prior is a class-wide guess, not this data's mean."""
 
+MIN_CAMERA_BOXES = 3
+"""Usable boxes a calibrated group with too few boxes to fit its horizon needs to fit its camera height
+under the principal row: the median of three survives one occluded or mislabelled box."""
+
 MIN_SPREAD = 0.02
 """Floor of a fitted class's spread: box edges are labelled to about a pixel, 2% of a 50 px box, so a
 tighter band would reject boxes for their labelling noise."""
@@ -182,11 +186,13 @@ def _participants(
             n = sum(count.get((name, c), 0) for c in fitted)
             if n >= min_boxes:
                 taking_part[name] = True
-            elif n >= 1 and info.intrinsics is not None:
+            elif n >= MIN_CAMERA_BOXES and info.intrinsics is not None:
                 taking_part[name] = False
             else:
                 unfitted[name] = f"{n} usable boxes of fitted classes; a horizon needs {min_boxes}" + (
-                    "" if info.intrinsics is not None else " (or a calibration: intrinsics fx, fy, cx, cy)"
+                    f", a camera height under a calibrated horizon {MIN_CAMERA_BOXES}"
+                    if info.intrinsics is not None
+                    else " (or a calibration: intrinsics fx, fy, cx, cy)"
                 )
     if not fitted or not taking_part:
         counts = ", ".join(f"{c} {len(b)}" for c, (b, _) in usable_boxes(dataset).items())
@@ -242,7 +248,8 @@ def _known_heights(dataset: Dataset, priors: Mapping[str, float] | None) -> dict
             out[name] = _Known(table[key], PRIOR_LOG_SD, "recipe height prior", True)
         elif name in measured:
             m = measured[name]
-            out[name] = _Known(m.metres, max(m.log_sd, MIN_SPREAD), f"3D labels ({m.n_boxes} boxes)", True)
+            boxes = f"{m.n_boxes} box" + ("es" if m.n_boxes != 1 else "")
+            out[name] = _Known(m.metres, max(m.log_sd, MIN_SPREAD), f"3D labels ({boxes})", True)
         elif key in table:
             out[name] = _Known(table[key], PRIOR_LOG_SD, f"prior: {PRIOR_HEIGHTS_M[key][1]}", False)
     return out
