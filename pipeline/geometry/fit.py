@@ -26,6 +26,11 @@ MIN_CAMERA_BOXES = 3
 """Usable boxes a calibrated group with too few boxes to fit its horizon needs to fit its camera height
 under the principal row: the median of three survives one occluded or mislabelled box."""
 
+PITCH_SD_DEG = 3.0
+"""Spread of a calibrated vehicle camera's pitch against the road, for the horizon's prior: cameras are
+mounted level to within a degree or two and the body pitches a degree on its springs and on grades (from
+memory). It only matters where the boxes say little, as with a few far objects at one row."""
+
 MIN_SPREAD = 0.02
 """Floor of a fitted class's spread: box edges are labelled to about a pixel, 2% of a 50 px box, so a
 tighter band would reject boxes for their labelling noise."""
@@ -134,7 +139,9 @@ def fit_cameras(
     boxes, image_ids, image_group = collect_boxes(dataset, fitted_names, group_of_image)
     free = np.array([taking_part[name] for name in names])
     counts = np.bincount(image_group[boxes.image], minlength=len(names))
-    layout = Layout(len(fitted_names), image_group, free, int(np.argmax(np.where(free, counts, -1))))
+    layout = Layout(
+        len(fitted_names), image_group, free, int(np.argmax(np.where(free, counts, -1))), _horizon_priors(groups, names)
+    )
 
     # 2. RANSAC for each group's starting horizon, then starting ratios
     generator = np.random.default_rng(rng)
@@ -154,14 +161,23 @@ def fit_cameras(
     scale, scale_sd = _metric_scale(fitted_names, classes, fit, known)
     all_names = list(dataset.category_names().values())
     shared = _shared_heights(all_names, fitted_names, fit, scale, known)
-    models = {}
-    for k, name in enumerate(names):
-        models[name] = _group_model(
-            name, groups[name], k, dataset, boxes, fit, layout, image_ids, fitted_names, classes, shared,
-            known, scale, scale_sd, taking_part[name],
-        )  # fmt: skip
+    solved = _Solved(boxes, fit, layout, image_ids, fitted_names, classes, known, scale, scale_sd)
+    models = {
+        name: _group_model(name, groups[name], k, dataset, solved, taking_part[name]) for k, name in enumerate(names)
+    }
     image_groups = {i: name for name, info in groups.items() for i in info.image_ids}
     return CameraGroups(models, image_groups, shared, unfitted)
+
+
+def _horizon_priors(groups: Mapping[str, GroupInfo], names: list[str]) -> np.ndarray:
+    """(G, 2) prior mean and sd of each calibrated group's horizon: the principal row, and the rows a
+    pitch of :data:`PITCH_SD_DEG` moves it by (``fy tan(pitch)``); NaN for an uncalibrated group."""
+    out = np.full((len(names), 2), np.nan)
+    for k, name in enumerate(names):
+        intrinsics = groups[name].intrinsics
+        if intrinsics is not None:
+            out[k] = intrinsics.cy, intrinsics.fy * math.tan(math.radians(PITCH_SD_DEG))
+    return out
 
 
 def _participants(
@@ -286,24 +302,27 @@ def _shared_heights(
     return out
 
 
+@dataclass(frozen=True)
+class _Solved:
+    """What the joint fit found, for building the groups' models."""
+
+    boxes: Boxes
+    fit: Fit
+    layout: Layout
+    image_ids: list[int]
+    fitted_names: list[str]
+    classes: Mapping[str, tuple[float, int]]
+    known: Mapping[str, _Known]
+    scale: float | None
+    scale_sd: float
+
+
 def _group_model(
-    name: str,
-    info: GroupInfo,
-    k: int,
-    dataset: Dataset,
-    boxes: Boxes,
-    fit: Fit,
-    layout: Layout,
-    image_ids: list[int],
-    fitted_names: list[str],
-    classes: Mapping[str, tuple[float, int]],
-    shared: Mapping[str, ClassHeight],
-    known: Mapping[str, _Known],
-    scale: float | None,
-    scale_sd: float,
-    free_horizon: bool,
+    name: str, info: GroupInfo, k: int, dataset: Dataset, solved: _Solved, free_horizon: bool
 ) -> GroundModel:
     """The ground model of group ``k``: its horizon, images' horizons, camera height and class ratios."""
+    boxes, fit, layout, image_ids = solved.boxes, solved.fit, solved.layout, solved.image_ids
+    fitted_names, classes, known, scale = solved.fitted_names, solved.classes, solved.known, solved.scale
     in_group = layout.image_group[boxes.image] == k
     supported = np.bincount(boxes.image[(fit.weights > 0) & in_group], minlength=len(image_ids)) > 0
     horizon = float(fit.horizons[k])
@@ -325,7 +344,7 @@ def _group_model(
             given = known[cls_name]
             out[cls_name] = ClassGround(
                 height_ratio=given.metres / camera,
-                spread=math.hypot(given.log_sd, scale_sd),
+                spread=math.hypot(given.log_sd, solved.scale_sd),
                 n_boxes=len(usable[cls_name][0]),
                 source="labels" if given.source.startswith("3D labels") else "prior",
             )

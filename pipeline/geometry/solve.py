@@ -26,12 +26,14 @@ class Layout:
     ``image_group`` (M,) gives each image's group; groups with ``free_horizon`` get their horizon fitted,
     the others keep their start (the calibrated principal row); every group but ``reference`` gets a log
     camera height relative to the reference's, and the class log ratios are the reference group's.
+    ``horizon_prior`` (G, 2), where given, holds a fitted horizon's prior mean and sd (pixels; NaN: none).
     """
 
     n_classes: int
     image_group: np.ndarray
     free_horizon: np.ndarray
     reference: int
+    horizon_prior: np.ndarray | None = None
 
     @property
     def n_groups(self) -> int:
@@ -132,11 +134,13 @@ def irls(
 
     Box j of class c in image i of group g has the log residual
     ``r_j = log h_j - (l_c - m_g) - log(v_b - v_g - o_i)``. Minimises
-    ``sum_j w_j r_j^2 + s^2 sum_i o_i^2 / tau_g^2 + s^2 sum_g m_g^2 / M^2``: ``s`` the robust residual scale,
-    ``tau_g`` the spread of group g's offsets, re-estimated each round as the root mean of ``o_i^2`` plus each
-    offset's posterior variance, and ``M = 1`` a weak prior on log camera-height differences that only keeps
-    the system solvable when two groups share no class. Each offset touches only its image's boxes, so the
-    offsets are eliminated in closed form (Schur complement) and the cost grows linearly with the images.
+    ``sum_j w_j r_j^2 + s^2 sum_i o_i^2 / tau_g^2 + s^2 sum_g m_g^2 / M^2 + s^2 sum_g (v_g - c_g)^2 / p_g^2``:
+    ``s`` the robust residual scale, ``tau_g`` the spread of group g's offsets, re-estimated each round as the
+    root mean of ``o_i^2`` plus each offset's posterior variance, ``M = 1`` a weak prior on log camera-height
+    differences that only keeps the system solvable when two groups share no class, and ``c_g, p_g`` a
+    calibrated group's horizon prior (:attr:`Layout.horizon_prior`; none elsewhere). Each offset touches only
+    its image's boxes, so the offsets are eliminated in closed form (Schur complement) and the cost grows
+    linearly with the images.
     """
     horizons, log_ratio, log_camera = (np.array(v, dtype=np.float64) for v in (horizons, log_ratio, log_camera))
     group = layout.image_group[boxes.image]
@@ -241,13 +245,18 @@ def _normal_system(
     n_images = len(layout.image_group)
     prior = np.zeros(n_params)
     prior[camera_col[camera_col >= 0]] = ridge
-    params = np.zeros(n_params)
-    params[camera_col[camera_col >= 0]] = state.log_camera[camera_col >= 0]
+    offset_from_prior = np.zeros(n_params)
+    offset_from_prior[camera_col[camera_col >= 0]] = state.log_camera[camera_col >= 0]
+    if layout.horizon_prior is not None:
+        mean, sd = layout.horizon_prior.T
+        has = (horizon_col >= 0) & np.isfinite(mean) & (sd > 0)
+        prior[horizon_col[has]] = ridge / sd[has] ** 2
+        offset_from_prior[horizon_col[has]] = state.horizons[has] - mean[has]
     wj = jac * w[:, None]
     a = wj.T @ jac + np.diag(prior)
     b = np.stack([np.bincount(boxes.image, wj[:, p] * q, n_images) for p in range(n_params)])
     d = np.bincount(boxes.image, w * q * q, n_images) + penalty
-    g = wj.T @ r + prior * params
+    g = wj.T @ r + prior * offset_from_prior
     g_o = np.bincount(boxes.image, w * q * r, n_images) + state.offsets * penalty
     y = b / d
     schur = a - y @ b.T
