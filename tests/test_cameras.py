@@ -8,6 +8,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from PIL import Image
 from typer.testing import CliRunner
 
 from pipeline.cli import app
@@ -26,6 +27,9 @@ from pipeline.geometry import (
     ground_for,
     measured_heights,
 )
+from pipeline.report import _scale_panels
+from pipeline.report.run_record import _boxes_by_class, _pairs
+from pipeline.report_plots import save_scale_plot
 
 from .test_geometry import pinhole_dataset
 
@@ -278,6 +282,20 @@ def test_kitti_flat_ground_check_needs_a_level_road():
         "no KITTI group stands on a level road: the 3D labels put object bases 1.5-3.2 m below the camera in "
         "the 1242x375 frames (a street falling away) and 1.1-1.8 m in the 1224x370 ones (rising)"
     )
+
+
+def test_report_scale_plot_has_a_panel_per_camera_group(tmp_path):
+    dataset, _ = four_sizes()
+    fitted = fit_cameras(dataset)
+    panels = _scale_panels(fitted, dataset, dataset, [])
+    assert [p.name for p in panels] == list(fitted.groups)
+    assert sum(len(b) for p in panels for b in p.real.values()) == sum(
+        len(b) for b in _boxes_by_class(_pairs(dataset), dataset.categories, usable_only=True).values()
+    )
+    save_scale_plot({}, {}, tmp_path / "scale.png", ground=None, image_height=375, groups=panels)
+    save_scale_plot(panels[0].real, {}, tmp_path / "one.png", ground=panels[0].ground, image_height=375)
+    with Image.open(tmp_path / "scale.png") as many, Image.open(tmp_path / "one.png") as one:
+        assert many.size[1] > one.size[1]  # two rows of panels
 
 
 def test_ground_command_on_real_frames_prints_tables_and_no_per_image_messages(tmp_path):

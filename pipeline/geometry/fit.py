@@ -93,7 +93,8 @@ def fit_cameras(
     neither has no model; (2) per group, RANSAC over horizon hypotheses, each made from two boxes of one
     class (the line through them meets ``h = 0`` at the horizon), scored by a truncated quadratic loss of
     ``log(h / (r_c (v_b - v_h)))``; (3) iteratively reweighted Gauss-Newton with Tukey's biweight on all
-    groups at once: per class a log ratio ``l_c``, per group a log camera height ``m_g`` (relative to
+    groups at once (a calibrated group's horizon held near its principal row by a weak prior,
+    :data:`PITCH_SD_DEG`): per class a log ratio ``l_c``, per group a log camera height ``m_g`` (relative to
     the group with most boxes) and a horizon, per image a horizon offset shrunk toward zero by a normal
     prior whose spread is re-estimated each round (expectation-maximisation for a random effect), so
     box ``h = exp(l_c - m_g) (v_b - v_g - o_i)``; (4) metres: the scale that makes the fitted classes'
