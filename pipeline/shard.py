@@ -5,8 +5,10 @@ variables. ``auto`` reads them, so one job script serves every array task and no
 pick the wrong slice:
 
 - Slurm job arrays set ``SLURM_ARRAY_TASK_ID``, ``SLURM_ARRAY_TASK_COUNT``, ``SLURM_ARRAY_TASK_MIN``,
-  ``SLURM_ARRAY_TASK_MAX`` and (for ``--array=a-b:s``) ``SLURM_ARRAY_TASK_STEP``. The shard index is the
-  task's position in the array, so ``--array=1-4`` and ``--array=0-6:2`` work as well as ``--array=0-3``.
+  ``SLURM_ARRAY_TASK_MAX`` and (for ``--array=a-b:s``) ``SLURM_ARRAY_TASK_STEP``. With ``auto`` the shard
+  is the task's position in the array and the count its size, so ``--array=1-4`` and ``--array=0-6:2``
+  work as well as ``--array=0-3``. With ``auto/N`` the task id itself is the shard number (ids 0 to
+  N-1), so a single failed task can be submitted again alone (``--array=2``).
 - Kubernetes Indexed Jobs set ``JOB_COMPLETION_INDEX`` (0-based) but not the number of completions, so
   the count is given on the command line: ``auto/N``.
 """
@@ -112,23 +114,21 @@ def _from_environment(environ: Mapping[str, str], count: int | None) -> Shard:
 
 def _from_slurm(environ: Mapping[str, str], count: int | None) -> Shard:
     task = _whole(environ, _SLURM_ID)
+    if count is not None:  # auto/N: the task ids are the shard numbers, so one task can be rerun alone
+        return Shard(task, count, f"{_SLURM_ID}={task}, of {count} shards")
+    if _SLURM_COUNT not in environ:
+        raise UsageError(
+            f"--shard auto: {_SLURM_ID} is set but {_SLURM_COUNT} is not",
+            hint="use --shard auto/N, N = the number of shards (task ids 0 to N-1)",
+        )
+    tasks = _whole(environ, _SLURM_COUNT)
     first = _whole(environ, "SLURM_ARRAY_TASK_MIN") if "SLURM_ARRAY_TASK_MIN" in environ else 0
     step = _whole(environ, "SLURM_ARRAY_TASK_STEP") if "SLURM_ARRAY_TASK_STEP" in environ else 1
-    if _SLURM_COUNT in environ:
-        tasks = _whole(environ, _SLURM_COUNT)
-        if count is not None and count != tasks:
-            raise UsageError(f"--shard auto/{count}: the Slurm array has {tasks} tasks ({_SLURM_COUNT})")
-    elif count is not None:
-        tasks = count
-    else:
-        raise UsageError(
-            f"--shard auto: {_SLURM_ID} is set but {_SLURM_COUNT} is not", hint="use --shard auto/N with N = array size"
-        )
     if "SLURM_ARRAY_TASK_MAX" in environ and _whole(environ, "SLURM_ARRAY_TASK_MAX") != first + (tasks - 1) * step:
         raise UsageError(
             f"--shard auto: the Slurm array is not an evenly spaced range (min {first}, max "
             f"{environ['SLURM_ARRAY_TASK_MAX']}, step {step}, {tasks} tasks), so task ids do not map to shards",
-            hint="submit with --array=0-(N-1), or give --shard i/N yourself",
+            hint="submit with --array=0-(N-1), or use --shard auto/N to take task ids as shard numbers",
         )
     offset = task - first
     if step < 1 or offset % step:

@@ -45,8 +45,8 @@ def test_malformed_or_out_of_range_slices_are_refused(env, text):
 
 
 def test_slurm_array_task_id_and_count(env):
-    # sbatch --array=0-3 sets, in task 2: ID 2, COUNT 4, MIN 0, MAX 3 (Slurm sbatch manual, "OUTPUT
-    # ENVIRONMENT VARIABLES", SchedMD, 2022; from memory, and seen in the tasks of scripts/slurm-check)
+    # sbatch --array=0-3 sets, in task 2: ID 2, COUNT 4, MIN 0, MAX 3 (SchedMD, sbatch(1) manual, "OUTPUT
+    # ENVIRONMENT VARIABLES", Slurm 22.05, 2022; from memory; ID and COUNT as seen by scripts/slurm-check)
     env(SLURM_ARRAY_TASK_ID=2, SLURM_ARRAY_TASK_COUNT=4, SLURM_ARRAY_TASK_MIN=0, SLURM_ARRAY_TASK_MAX=3)
     shard = parse_shard("auto", os.environ)
     assert shard.pair == (2, 4)
@@ -76,11 +76,20 @@ def test_slurm_array_that_is_not_a_range_is_refused(env):
         parse_shard("auto", os.environ)
 
 
-def test_slurm_count_must_agree_with_an_explicit_one(env):
-    env(SLURM_ARRAY_TASK_ID=1, SLURM_ARRAY_TASK_COUNT=4)
-    assert parse_shard("auto/4", os.environ).pair == (1, 4)
-    with pytest.raises(UsageError, match="has 4 tasks"):
+def test_slurm_with_an_explicit_count_takes_task_ids_as_shard_numbers(env):
+    # resubmitting only task 2 of 8 (sbatch --array=2) makes a one-task array: auto/8 still runs shard 2/8
+    env(SLURM_ARRAY_TASK_ID=2, SLURM_ARRAY_TASK_COUNT=1, SLURM_ARRAY_TASK_MIN=2, SLURM_ARRAY_TASK_MAX=2)
+    assert parse_shard("auto/8", os.environ).pair == (2, 8)
+    assert parse_shard("auto", os.environ).pair == (0, 1)  # its place in that one-task array
+    env(SLURM_ARRAY_TASK_ID=8)
+    with pytest.raises(UsageError, match="index 8 from SLURM_ARRAY_TASK_ID=8, of 8 shards is not below the count 8"):
         parse_shard("auto/8", os.environ)
+
+
+def test_slurm_without_a_count_is_refused(env):
+    env(SLURM_ARRAY_TASK_ID=1)
+    with pytest.raises(UsageError, match="SLURM_ARRAY_TASK_COUNT is not"):
+        parse_shard("auto", os.environ)
 
 
 def test_kubernetes_completion_index_with_an_explicit_count(env):
