@@ -59,12 +59,12 @@ def object_silhouettes(examples: Examples) -> dict[tuple[int, tuple[float, float
     for refs in examples.objects.values():
         for ref in refs:
             key = (ref.scene, ref.box)
-            if key not in out and _overlap_share(ref.box, examples.occupied[ref.scene]) <= OVERLAP_LIMIT:
+            if key not in out and overlap_share(ref.box, examples.occupied[ref.scene]) <= OVERLAP_LIMIT:
                 out[key] = object_silhouette(examples.images[ref.scene], ref.box, segmentation=ref.segmentation).mask
     return out
 
 
-def _overlap_share(box, others: np.ndarray) -> float:
+def overlap_share(box, others: np.ndarray) -> float:
     """Largest share of ``box``'s area covered by one of ``others`` (the box itself excluded)."""
     x, y, w, h = box
     best = 0.0
