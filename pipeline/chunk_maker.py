@@ -160,19 +160,21 @@ class ChunkMaker:
         outcome, verdicts = result
         recipe = self.setup.recipe
         scene = self.setup.dataset.scenes[job.sources[attempt][0]]
-        entry = attempt_entry(job, attempt, scene, outcome, verdicts)
+        spec = recipe.stages[job.stage]
+        target = self.setup.dataset.category_by_name(spec.target_class).id
+        entry = attempt_entry(job, attempt, scene, outcome, verdicts, target_category_id=target)
         if isinstance(outcome, Failure):
             return entry, None
         name = f"{recipe.name}_{job.key}"
         if not entry["accepted"]:
-            entry["reject"] = self.folder.write_reject(f"{name}_a{attempt}.jpg", outcome.image)
+            entry["reject"] = self.folder.write_reject(f"{name}_a{attempt}.jpg", outcome.image, entry["boxes"])
             return entry, None
         file_name = self.folder.write_image(f"{name}.png", outcome.image)
         entry["file_name"] = file_name
         output = output_entry(
             job,
             attempt,
-            recipe.stages[job.stage],
+            spec,
             outcome,
             entry,
             file_name,

@@ -7,8 +7,9 @@ import shutil
 from collections.abc import Sequence
 from pathlib import Path
 
-from .errors import RunError
-from .writer import RunFolder, assemble, read_chunks
+from .errors import RunError, RunInputError
+from .tally import read_manifest, summary_record, tally_stages
+from .writer import SUMMARY_KEY, RunFolder, assemble, read_chunks
 
 
 def collect(shard_dirs: Sequence[Path], out: Path) -> dict[str, int]:
@@ -26,12 +27,13 @@ def collect(shard_dirs: Sequence[Path], out: Path) -> dict[str, int]:
         try:
             identities.append(json.loads(path.read_text(encoding="utf-8")))
         except FileNotFoundError:
-            raise RunError(f"{path}: not found; {folder} is not a rarefill run folder") from None
+            raise RunInputError(f"{path}: not found; {folder} is not a rarefill run folder") from None
         except json.JSONDecodeError as exc:
             raise RunError(f"{path}: unreadable ({exc})") from None
-    first = {k: v for k, v in identities[0].items() if k != "shard"}
+    # the summary a shard's run wrote when it finished is its own; the shards share everything else
+    first = {k: v for k, v in identities[0].items() if k not in ("shard", SUMMARY_KEY)}
     for folder, identity in zip(shard_dirs, identities, strict=True):
-        if {k: v for k, v in identity.items() if k != "shard"} != first:
+        if {k: v for k, v in identity.items() if k not in ("shard", SUMMARY_KEY)} != first:
             raise RunError(
                 f"{folder} belongs to another run than {shard_dirs[0]} (recipe, seed, counts or plan differ)"
             )
@@ -39,9 +41,9 @@ def collect(shard_dirs: Sequence[Path], out: Path) -> dict[str, int]:
     count = shards[0][1]
     if shards != [(i, count) for i in range(count)]:
         found = ", ".join(f"{i}/{n}" for i, n in shards)
-        raise RunError(f"need each shard 0/{count} .. {count - 1}/{count} exactly once, got {found}")
+        raise RunInputError(f"need each shard 0/{count} .. {count - 1}/{count} exactly once, got {found}")
 
-    identity = {k: "0/1" if k == "shard" else v for k, v in identities[0].items()}
+    identity = {k: "0/1" if k == "shard" else v for k, v in identities[0].items() if k != SUMMARY_KEY}
     target = RunFolder.claim(Path(out), identity)
     for folder, shard_identity in zip(shard_dirs, identities, strict=True):
         index = int(shard_identity["shard"].split("/")[0])
@@ -54,7 +56,10 @@ def collect(shard_dirs: Sequence[Path], out: Path) -> dict[str, int]:
                             _copy(Path(folder) / attempt[key], target.root / attempt[key])
             target.commit(record["chunk"], record["jobs"])
     info = json.loads((Path(shard_dirs[0]) / "labels.json").read_text(encoding="utf-8"))["info"]
-    return assemble(target.root, range(first["chunks"]), categories=first["categories"], info={**info, "shard": "0/1"})
+    info = {**info, "shard": "0/1"}
+    counts = assemble(target.root, range(first["chunks"]), categories=first["categories"], info=info)
+    target.write_summary(summary_record(tally_stages(read_manifest(target.root), first.get("stages", ()))))
+    return counts
 
 
 def _copy(source: Path, target: Path) -> None:

@@ -19,12 +19,15 @@ from .recipe import StageSpec
 from .stages import Candidate, Failure
 
 
-def attempt_entry(job: Job, attempt: int, scene: Scene, outcome: Candidate | Failure, verdicts: list) -> dict:
-    """The manifest entry of one attempt, without its file names: seed, source, verdicts, the decision."""
+def attempt_entry(
+    job: Job, attempt: int, scene: Scene, outcome: Candidate | Failure, verdicts: list, *, target_category_id: int
+) -> dict:
+    """The manifest entry of one attempt, without its file names: seed, source, boxes, verdicts, the decision."""
     entry: dict[str, Any] = {
         "attempt": attempt,
         "seed": job.attempt_seed(attempt),
         "source_image_id": scene.id,
+        "boxes": [] if isinstance(outcome, Failure) else subject_boxes(outcome, target_category_id),
         "verdicts": [v.to_dict() for v in verdicts],
     }
     if isinstance(outcome, Failure):
@@ -33,6 +36,28 @@ def attempt_entry(job: Job, attempt: int, scene: Scene, outcome: Candidate | Fai
     failed = [v.name for v in verdicts if not v]
     entry.update(accepted=not failed, rejected_by=sorted(set(failed)))
     return entry
+
+
+def subject_boxes(candidate: Candidate, target_category_id: int) -> list[dict]:
+    """The boxes of the objects an attempt is about, for the manifest (accepted or rejected alike).
+
+    New objects with their re-fitted ``bbox`` and the ``requested_bbox`` the stage asked for; else the kept
+    objects the filters judged (a rebackground's kept object); else the kept instances of the stage's class
+    (a restyle). COCO ``[x, y, w, h]`` in pixels, rounded to 0.01.
+    """
+    boxes = [
+        {"category_id": o.category_id, "bbox": _rounded(o.bbox), "requested_bbox": _rounded(o.requested), "new": True}
+        for o in candidate.new
+    ]
+    kept = [candidate.kept[i] for i in candidate.checked if i >= 0]
+    if not boxes and not kept:
+        kept = [a for a in candidate.kept if a.category_id == target_category_id and not a.iscrowd]
+    boxes += [{"category_id": a.category_id, "bbox": _rounded(a.bbox), "new": False} for a in kept]
+    return boxes
+
+
+def _rounded(box) -> list[float]:
+    return [round(float(v), 2) for v in box]
 
 
 def output_entry(

@@ -17,7 +17,7 @@ from typing import Any
 
 import numpy as np
 
-from .chunk_maker import made_chunks
+from .chunk_maker import made_chunks, open_model
 from .dataset import Dataset, category_entry, load_dataset
 from .errors import UsageError
 from .filters import FilterLimits
@@ -27,6 +27,7 @@ from .placement import aspect_ratios
 from .plan import Plan, make_plan
 from .recipe import Recipe
 from .stages import stage_module
+from .tally import StageTally, read_manifest, summary_record, tally_stages
 from .writer import RUN_FORMAT, RunFolder, assemble, read_chunks
 
 
@@ -45,11 +46,14 @@ class Setup:
 
 @dataclass
 class Progress:
-    """Running totals, handed to the progress callback after each chunk."""
+    """Running totals of the jobs, handed to the progress callback once the run is checked and after each chunk.
+
+    ``resumed`` jobs were done by an earlier start of the same run (a time estimate should leave them out).
+    """
 
     wanted: int
-    chunks_total: int
-    chunks_done: int = 0
+    done: int = 0
+    resumed: int = 0
     accepted: int = 0
     attempted: int = 0
     rejections: Counter = field(default_factory=Counter)
@@ -57,7 +61,7 @@ class Progress:
 
 @dataclass(frozen=True)
 class RunSummary:
-    """What a run (or shard) made."""
+    """What a run (or shard) made: totals, and per stage (see :class:`pipeline.tally.StageTally`)."""
 
     output: Path
     wanted: int
@@ -67,6 +71,12 @@ class RunSummary:
     rejections: dict[str, int]
     chunks_skipped: int
     shard: tuple[int, int]
+    stages: tuple[StageTally, ...] = ()
+
+    @property
+    def short(self) -> int:
+        """Wanted outputs missing over all stages (0 when every stage reached its count)."""
+        return sum(t.short for t in self.stages)
 
 
 def prepare(recipe: Recipe) -> Setup:
@@ -108,6 +118,7 @@ def run_identity(setup: Setup, shard: tuple[int, int]) -> dict[str, Any]:
         "format": RUN_FORMAT,
         "recipe": {"name": recipe.name, "sha256": recipe.sha256, "seed": recipe.seed},
         "counts": [s.count for s in recipe.stages],
+        "stages": [{"kind": s.kind, "class": s.target_class, "count": s.count} for s in recipe.stages],
         "plan_sha256": fingerprint,
         "chunks": len(setup.plan.chunks),
         "shard": f"{shard[0]}/{shard[1]}",
@@ -134,43 +145,56 @@ def run_recipe(
     shard : (index, count)
         Run only chunks ``index, index + count, ...`` of the plan (0-based index).
     progress : callable, optional
-        Called with a :class:`Progress` after each committed chunk.
+        Called with a :class:`Progress` once everything is checked and the output folder claimed, then
+        after each committed chunk.
     generator, verifier : optional
         Use these instead of loading the recipe's model folder (tests pass small fakes; they must pickle
         when ``workers > 1``).
     """
+    # 1. check everything before anything is written: recipe, data set, plan, shard, model folder
     if workers < 1:
         raise UsageError(f"--workers must be >= 1, got {workers}")
     setup = prepare(recipe)
     mine = setup.plan.shard(*shard)
+    opened_here = generator is None
+    if opened_here:
+        generator, verifier = open_model(recipe)
+
+    # 2. claim the output folder; chunks an earlier start committed are skipped
     identity = run_identity(setup, shard)
     folder = RunFolder.claim(recipe.output, identity)
     todo = [c for c in mine if c not in folder.committed()]
     folder.log(f"start: {len(todo)} of {len(mine)} chunks to make, {workers} worker(s), shard {shard[0]}/{shard[1]}")
-    wanted = sum(len(setup.plan.chunks[c]) for c in mine)
-    state = Progress(wanted=wanted, chunks_total=len(mine), chunks_done=len(mine) - len(todo))
+    state = Progress(wanted=sum(len(setup.plan.chunks[c]) for c in mine))
     _count_committed(folder, [c for c in mine if c not in todo], state)
+    state.resumed = state.done
     if progress:
         progress(state)
 
+    # 3. make and commit the chunks; worker processes open their own copy of the model
+    if opened_here and workers > 1:
+        generator = verifier = None
     for chunk, records in made_chunks(setup, todo, workers, folder.root, generator, verifier):
         folder.commit(chunk, records)
-        state.chunks_done += 1
         _count(records, state)
         if progress:
             progress(state)
 
+    # 4. labels and manifest in plan order, then the tally per stage
     counts = assemble(folder.root, mine, categories=identity["categories"], info=_info(recipe, shard))
+    stages = tally_stages(read_manifest(folder.root), identity["stages"])
+    folder.write_summary(summary_record(stages))
     folder.log(f"done: {counts['accepted']} accepted of {counts['attempted']} attempts")
     return RunSummary(
         output=folder.root,
-        wanted=wanted,
+        wanted=state.wanted,
         accepted=counts["accepted"],
         attempted=counts["attempted"],
         annotations=counts["annotations"],
         rejections=dict(state.rejections + Counter(duplicate=counts["duplicates"])),
         chunks_skipped=len(mine) - len(todo),
         shard=shard,
+        stages=tuple(stages),
     )
 
 
@@ -184,6 +208,7 @@ def _info(recipe: Recipe, shard: tuple[int, int]) -> dict[str, Any]:
 
 def _count(records: Sequence[dict], state: Progress) -> None:
     for job in records:
+        state.done += 1
         state.accepted += job["output"] is not None
         for attempt in job["attempts"]:
             state.attempted += 1
