@@ -32,6 +32,12 @@ Outcome = tuple[Candidate | Failure, list]
 """What one attempt came to: the candidate (or why none was made) and its verdicts."""
 
 
+def accepted(outcome: Outcome) -> bool:
+    """Whether an attempt's candidate passed every filter."""
+    candidate, verdicts = outcome
+    return isinstance(candidate, Candidate) and all(verdicts)
+
+
 def open_model(recipe: Recipe) -> tuple[Generator, Any]:
     """The recipe's generator and its verifier (None for a user's own pipeline, which has none).
 
@@ -116,24 +122,31 @@ class ChunkMaker:
 
     def make(self, chunk: int) -> list[dict]:
         """Run every job of ``chunk`` until accepted or out of attempts; write images; return job records."""
-        plan = self.setup.plan
-        jobs = [plan.jobs[i] for i in plan.chunks[chunk]]
+        jobs = [self.setup.plan.jobs[i] for i in self.setup.plan.chunks[chunk]]
         records = {job.key: {"key": job.key, "stage": job.stage, "slot": job.slot, "attempts": []} for job in jobs}
         outputs: dict[str, dict | None] = {job.key: None for job in jobs}
-        open_jobs = list(jobs)
+        for job, attempt, outcome in self.outcomes(chunk):
+            entry, output = self._record(job, attempt, outcome)
+            records[job.key]["attempts"].append(entry)
+            if output is not None:
+                outputs[job.key] = output
+        return [{**records[job.key], "output": outputs[job.key]} for job in jobs]
+
+    def outcomes(self, chunk: int) -> Iterator[tuple[Job, int, Outcome]]:
+        """``(job, attempt, outcome)`` of every attempt of ``chunk``, round by round, in job order per round.
+
+        A job takes part in the next round until a candidate of it is accepted (every verdict passed);
+        nothing is written here.
+        """
+        plan = self.setup.plan
+        open_jobs = [plan.jobs[i] for i in plan.chunks[chunk]]
         for attempt in range(plan.attempts):
             if not open_jobs:
                 break
-            still_open = []
-            for job, outcome in zip(open_jobs, self.attempt_round(open_jobs, attempt), strict=True):
-                entry, output = self._record(job, attempt, outcome)
-                records[job.key]["attempts"].append(entry)
-                if output is not None:
-                    outputs[job.key] = output
-                else:
-                    still_open.append(job)
-            open_jobs = still_open
-        return [{**records[job.key], "output": outputs[job.key]} for job in jobs]
+            results = self.attempt_round(open_jobs, attempt)
+            for job, outcome in zip(open_jobs, results, strict=True):
+                yield job, attempt, outcome
+            open_jobs = [job for job, outcome in zip(open_jobs, results, strict=True) if not accepted(outcome)]
 
     def attempt_round(self, jobs: Sequence[Job], attempt: int) -> list[Outcome]:
         """Attempt ``attempt`` of every job in ``jobs``: draft all, denoise their windows in one batch, judge."""

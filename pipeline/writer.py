@@ -104,7 +104,20 @@ class RunFolder:
             stale.unlink(missing_ok=True)
         return folder
 
-    def _check_identity(self, identity: dict[str, Any]) -> None:
+    @classmethod
+    def inspect(cls, root: Path, identity: Mapping[str, Any]) -> set[int] | None:
+        """What :meth:`claim` would find, writing nothing: None for a new folder, else the committed chunks.
+
+        Raises
+        ------
+        RunError
+            As :meth:`claim`.
+        """
+        folder = cls(root)
+        folder._check_identity(dict(identity), write=False)
+        return folder.committed() if (folder.root / "run.json").exists() else None
+
+    def _check_identity(self, identity: dict[str, Any], *, write: bool = True) -> None:
         path = self.root / "run.json"
         if path.exists():
             try:
@@ -124,7 +137,7 @@ class RunFolder:
                 f"{self.root} exists and is not a rarefill run folder",
                 hint="choose an empty or new output folder (--out)",
             )
-        else:
+        elif write:
             write_json_atomic(path, identity, indent=2)
 
     def chunk_path(self, chunk: int) -> Path:

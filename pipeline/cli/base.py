@@ -63,6 +63,8 @@ def reports_errors(command: F) -> F:
                 if exc.hint:
                     err.print(f"hint: {exc.hint}", markup=False)
                 raise typer.Exit(exc.exit_code) from None
+            except (typer.Exit, typer.Abort):
+                raise  # a command's own exit code (e.g. 3 for a run that finished short)
             except KeyboardInterrupt:
                 err.print("interrupted", markup=False)
                 raise typer.Exit(130) from None

@@ -29,7 +29,18 @@ from ..errors import DatasetError
 from ..files import write_bytes_atomic
 from ..geometry import GroundModel, fit_ground
 from ..report_plots import save_class_counts, save_scale_plot, save_size_histograms
-from .markup import _accepted_card, _document, _esc, _funnel_html, _gallery, _plots_html, _rejected_card, _source_links
+from ..tally import tally_stages
+from .markup import (
+    _accepted_card,
+    _document,
+    _esc,
+    _funnel_html,
+    _gallery,
+    _plots_html,
+    _rejected_card,
+    _source_links,
+    _stages_html,
+)
 from .run_record import Funnel, RunRecord, _boxes_by_class, _is_synthetic, _pairs, funnel, read_run, real_from_labels
 from .thumbnails import ASSETS, NEW_BOX_RGB, REAL_BOX_RGB, _make_thumbnails, annotated_thumbnail
 
@@ -169,7 +180,13 @@ def write_report(
     # 4. the overview page
     header = f"<h1>rarefill report: {_esc(run_name)}</h1><p>{subtitle}</p>"
     body = "\n".join(
-        [_funnel_html(counts), _plots_html(note, ""), gallery("accepted", 1, ""), gallery("rejected", 1, "")]
+        [
+            _funnel_html(counts),
+            _stages_html(tally_stages(run.manifest, run.identity.get("stages") or ())),
+            _plots_html(note, ""),
+            gallery("accepted", 1, ""),
+            gallery("rejected", 1, ""),
+        ]
     )
     path = run.root / "report.html"
     write_bytes_atomic(path, _document(f"rarefill report: {run_name}", header, body).encode("utf-8"))
