@@ -66,7 +66,9 @@ def encode_thumbnail(image: np.ndarray, boxes: Sequence[Mapping[str, Any]] = ())
         if box.get("requested_bbox") is not None:
             _draw_box(small, box["requested_bbox"], scale, REQUESTED_BOX_RGB)
         _draw_box(small, box["bbox"], scale, NEW_BOX_RGB if box.get("new") else REAL_BOX_RGB)
-    ok, data = cv2.imencode(".jpg", np.ascontiguousarray(small[:, :, ::-1]), [cv2.IMWRITE_JPEG_QUALITY, 85])
+    # without chroma subsampling (4:4:4) a drawn 1 px box keeps its colour
+    params = [cv2.IMWRITE_JPEG_QUALITY, 85, cv2.IMWRITE_JPEG_SAMPLING_FACTOR, cv2.IMWRITE_JPEG_SAMPLING_FACTOR_444]
+    ok, data = cv2.imencode(".jpg", np.ascontiguousarray(small[:, :, ::-1]), params)
     if not ok:
         raise RunError("could not encode a JPEG thumbnail")
     return data.tobytes()

@@ -15,7 +15,7 @@ from pipeline.errors import EXIT_BAD_INPUT, EXIT_FAILURE, EXIT_SHORT
 from pipeline.recipe import load_recipe
 from pipeline.runner import run_recipe
 from pipeline.tally import size_band, tally_stages
-from pipeline.writer import NEW_BOX_RGB
+from pipeline.writer import NEW_BOX_RGB, REQUESTED_BOX_RGB, encode_thumbnail
 
 from .conftest import SEED_SCENES
 from .fakes import BlockGenerator, BoxVerifier
@@ -171,7 +171,7 @@ def test_dry_run_with_a_broken_model_exits_2_and_writes_nothing(tmp_path, tiny_m
     broken.mkdir()
     (broken / "rarefill_model.json").write_text("{not json")
     result = runner.invoke(app, ["run", str(_recipe(tmp_path, broken)), "--dry-run"])
-    assert result.exit_code == EXIT_BAD_INPUT and "rarefill_model.json" in result.stderr
+    assert result.exit_code == EXIT_BAD_INPUT and "incomplete model folder, missing unet/config.json" in result.stderr
     assert not (tmp_path / "out").exists()
 
 
@@ -273,7 +273,7 @@ def test_provenance_records_only_the_options_that_applied(short_run):
 # 7. rejected candidates keep their boxes in the manifest; reject thumbnails draw them
 
 
-def test_rejected_candidates_keep_their_boxes_and_thumbnails_draw_them(short_run):
+def test_rejected_candidates_keep_their_boxes_in_the_manifest(short_run):
     folder, _ = short_run
     manifest = [json.loads(x) for x in (folder / "out" / "manifest.jsonl").read_text().splitlines()]
     rejected = [m for m in manifest if not m["accepted"] and "reject" in m]
@@ -281,11 +281,22 @@ def test_rejected_candidates_keep_their_boxes_and_thumbnails_draw_them(short_run
     for line in rejected:
         (box,) = line["boxes"]
         assert box["new"] and len(box["bbox"]) == 4 and len(box["requested_bbox"]) == 4
-        thumb = np.asarray(Image.open(folder / "out" / line["reject"]).convert("RGB")).astype(int)
-        x, y, w, h = (v / 2 for v in box["bbox"])  # thumbnails are half size
-        edge = thumb[int(round(y)), int(round(x)) : int(round(x + w))]
-        # JPEG shifts colours a little: the drawn top edge stays close to the box colour
-        assert np.abs(edge - np.array(NEW_BOX_RGB)).sum(axis=1).mean() < 90
+        assert box["bbox"] != box["requested_bbox"]  # the re-fitted box is what was drawn, not what was asked
+
+
+def test_reject_thumbnails_draw_the_requested_and_the_refitted_box():
+    import cv2
+
+    image = np.full((100, 200, 3), 90, np.uint8)
+    boxes = [{"bbox": [40, 20, 60, 40], "requested_bbox": [120, 30, 40, 50], "new": True}]
+    thumb = cv2.imdecode(np.frombuffer(encode_thumbnail(image, boxes), np.uint8), cv2.IMREAD_COLOR)[:, :, ::-1]
+    assert thumb.shape == (50, 100, 3)  # half size
+    refitted_top = thumb[10, 22:48].astype(int)  # (40, 20) .. (100, 60) at half size
+    requested_left = thumb[17:38, 60].astype(int)  # (120, 30) .. (160, 80) at half size
+    # JPEG shifts colours a little: the drawn edges stay near their colours, the grey between them stays grey
+    assert np.abs(refitted_top - NEW_BOX_RGB).sum(axis=1).mean() < 60
+    assert np.abs(requested_left - REQUESTED_BOX_RGB).sum(axis=1).mean() < 60
+    assert np.abs(thumb[30, 35].astype(int) - 90).max() < 10
 
 
 # 8. bad input leaves nothing behind: the model folder is checked before the run folder is made

@@ -40,7 +40,7 @@ def _print_run_summary(summary) -> None:
     out.print(f"accepted {summary.accepted} of {summary.wanted} wanted, after {summary.attempted} attempts")
     for tally in summary.stages:
         for line in _stage_lines(tally):
-            out.print(line, markup=False)
+            out.print(line, markup=False, soft_wrap=True)
     if summary.chunks_skipped:
         out.print(f"resumed: {summary.chunks_skipped} chunk(s) were already done")
     out.print(f"labels:   {summary.output / 'labels.json'}")
@@ -54,9 +54,17 @@ def _exit_if_short(summary, allow_short: bool) -> None:
         return
     stages = sum(1 for t in summary.stages if t.short)
     err = stderr()
-    err.print(f"short: {summary.short} of {summary.wanted} wanted outputs missing in {stages} stage(s)", markup=False)
+    err.print(
+        f"short: {summary.short} of {summary.wanted} wanted outputs missing in {stages} stage(s)",
+        markup=False,
+        soft_wrap=True,
+    )
     if not allow_short:
-        err.print(f"hint: exit code {EXIT_SHORT} means the run finished short; --allow-short exits 0", markup=False)
+        err.print(
+            f"hint: exit code {EXIT_SHORT} means the run finished short; --allow-short exits 0",
+            markup=False,
+            soft_wrap=True,
+        )
         raise typer.Exit(EXIT_SHORT)
 
 
@@ -102,7 +110,7 @@ def _clock(seconds: float) -> str:
 def _print_preview(preview) -> None:
     out = stdout()
     shard = f", shard {preview.shard[0]}/{preview.shard[1]}" if preview.shard != (0, 1) else ""
-    out.print(f"plan of {preview.recipe.name}{shard}: checked, nothing written", markup=False)
+    out.print(f"plan of {preview.recipe.name}{shard}: checked, nothing written", markup=False, soft_wrap=True)
     for stage in preview.stages:
         sizes = "no sizes" if stage.sizes_px is None else f"{stage.sizes_px[0]:.0f}-{stage.sizes_px[1]:.0f} px tall"
         out.print(
@@ -110,15 +118,16 @@ def _print_preview(preview) -> None:
             f"up to {preview.attempts_per_output} attempts each, from {stage.sources} source scenes; "
             f"objects {sizes} ({stage.sizes_from})",
             markup=False,
+            soft_wrap=True,
         )
     estimated = f", {preview.surfaces_estimated} estimated" if preview.surfaces_estimated else ""
-    out.print(f"surfaces: {preview.surfaces_checked} source scenes checked{estimated}", markup=False)
-    out.print(f"model:    {preview.recipe.model} ({preview.model.get('kind', '?')})", markup=False)
+    out.print(f"surfaces: {preview.surfaces_checked} source scenes checked{estimated}", markup=False, soft_wrap=True)
+    out.print(f"model:    {preview.recipe.model} ({preview.model.get('kind', '?')})", markup=False, soft_wrap=True)
     if preview.chunks_done is None:
         state = "new"
     else:
         state = f"an earlier start of this run, {preview.chunks_done} chunk(s) done (they would be skipped)"
-    out.print(f"output:   {preview.output} ({state})", markup=False)
+    out.print(f"output:   {preview.output} ({state})", markup=False, soft_wrap=True)
 
 
 def _run_one_job(recipe, key: str, out: Path | None) -> None:
@@ -129,9 +138,11 @@ def _run_one_job(recipe, key: str, out: Path | None) -> None:
     for entry in result.attempts:
         verdict = "accepted" if entry["accepted"] else "rejected by " + ", ".join(entry["rejected_by"])
         image = entry.get("image", "no image (failed before generation)")
-        console.print(f"attempt {entry['attempt']}: {verdict}: {image}", markup=False)
+        console.print(f"attempt {entry['attempt']}: {verdict}: {image}", markup=False, soft_wrap=True)
     outcome = "accepted" if result.accepted else f"not accepted in {len(result.attempts)} attempts"
-    console.print(f"job {result.key}: {outcome}; every attempt in {result.folder} (job.json)", markup=False)
+    console.print(
+        f"job {result.key}: {outcome}; every attempt in {result.folder} (job.json)", markup=False, soft_wrap=True
+    )
 
 
 @app.command()
