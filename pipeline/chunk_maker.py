@@ -74,21 +74,34 @@ def stage_context(setup: Setup, generator: Generator, verifier: Any) -> StageCon
 
 
 def made_chunks(
-    setup: Setup, todo: Sequence[int], workers: int, root: Path, generator, verifier
+    setup: Setup,
+    todo: Sequence[int],
+    workers: int,
+    root: Path,
+    generator,
+    verifier,
+    on_job: Callable[[dict], None] | None = None,
 ) -> Iterator[tuple[int, list[dict]]]:
-    """``(chunk, job records)`` for every chunk of ``todo``, in this process or in a pool of ``workers``."""
+    """``(chunk, job records)`` for every chunk of ``todo``, in this process or in a pool of ``workers``.
+
+    ``on_job`` is called with each job's record once the job is done: as soon as it is, in this process;
+    when its chunk arrives, from workers.
+    """
     if not todo:
         return
     if workers == 1 or len(todo) == 1:
         maker = ChunkMaker(setup, root, threads=None, generator=generator, verifier=verifier)
         for chunk in todo:
-            yield chunk, maker.make(chunk)
+            yield chunk, maker.make(chunk, on_job=on_job)
         return
     threads = max(1, (os.cpu_count() or 1) // workers)
     context = multiprocessing.get_context("spawn")
     initargs = (setup, root, threads, generator, verifier)
     with context.Pool(workers, initializer=_worker_init, initargs=initargs) as pool:
-        yield from pool.imap_unordered(_worker_make, todo)
+        for chunk, records in pool.imap_unordered(_worker_make, todo):
+            for record in records if on_job else ():
+                on_job(record)
+            yield chunk, records
 
 
 _WORKER: dict[str, ChunkMaker] = {}  # one ChunkMaker per worker process, built by the pool's initializer
@@ -120,9 +133,13 @@ class ChunkMaker:
         self.ctx = stage_context(setup, generator, verifier)
         self.folder = RunFolder(root)
 
-    def make(self, chunk: int) -> list[dict]:
-        """Run every job of ``chunk`` until accepted or out of attempts; write images; return job records."""
-        jobs = [self.setup.plan.jobs[i] for i in self.setup.plan.chunks[chunk]]
+    def make(self, chunk: int, *, on_job: Callable[[dict], None] | None = None) -> list[dict]:
+        """Run every job of ``chunk`` until accepted or out of attempts; write images; return job records.
+
+        ``on_job`` is called with each job's record as soon as the job is done (for progress).
+        """
+        plan = self.setup.plan
+        jobs = [plan.jobs[i] for i in plan.chunks[chunk]]
         records = {job.key: {"key": job.key, "stage": job.stage, "slot": job.slot, "attempts": []} for job in jobs}
         outputs: dict[str, dict | None] = {job.key: None for job in jobs}
         for job, attempt, outcome in self.outcomes(chunk):
@@ -130,6 +147,8 @@ class ChunkMaker:
             records[job.key]["attempts"].append(entry)
             if output is not None:
                 outputs[job.key] = output
+            if on_job is not None and (output is not None or attempt == plan.attempts - 1):
+                on_job({**records[job.key], "output": output})
         return [{**records[job.key], "output": outputs[job.key]} for job in jobs]
 
     def outcomes(self, chunk: int) -> Iterator[tuple[Job, int, Outcome]]:

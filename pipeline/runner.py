@@ -46,7 +46,7 @@ class Setup:
 
 @dataclass
 class Progress:
-    """Running totals of the jobs, handed to the progress callback once the run is checked and after each chunk.
+    """Running totals of the jobs, handed to the progress callback once the run is checked and after each job.
 
     ``resumed`` jobs were done by an earlier start of the same run (a time estimate should leave them out).
     """
@@ -146,7 +146,7 @@ def run_recipe(
         Run only chunks ``index, index + count, ...`` of the plan (0-based index).
     progress : callable, optional
         Called with a :class:`Progress` once everything is checked and the output folder claimed, then
-        after each committed chunk.
+        after each job (in this process as soon as it is done, from workers when its chunk arrives).
     generator, verifier : optional
         Use these instead of loading the recipe's model folder (tests pass small fakes; they must pickle
         when ``workers > 1``).
@@ -174,11 +174,14 @@ def run_recipe(
     # 3. make and commit the chunks; worker processes open their own copy of the model
     if opened_here and workers > 1:
         generator = verifier = None
-    for chunk, records in made_chunks(setup, todo, workers, folder.root, generator, verifier):
-        folder.commit(chunk, records)
-        _count(records, state)
+
+    def job_done(record: dict) -> None:
+        _count([record], state)
         if progress:
             progress(state)
+
+    for chunk, records in made_chunks(setup, todo, workers, folder.root, generator, verifier, job_done):
+        folder.commit(chunk, records)
 
     # 4. labels and manifest in plan order, then the tally per stage
     counts = assemble(folder.root, mine, categories=identity["categories"], info=_info(recipe, shard))

@@ -232,7 +232,7 @@ def test_progress_starts_after_checks_and_counts_jobs(tmp_path):
 
     run_recipe(recipe, generator=BlockGenerator(), verifier=BoxVerifier(), progress=progress)
     assert seen[0] == (4, 0, 0, True)  # first call: the folder is claimed, no job made yet
-    assert [s[1] for s in seen] == [0, 2, 4]  # one call per chunk, counting its jobs
+    assert [s[1] for s in seen] == [0, 1, 2, 3, 4]  # one call per job done
     assert seen[-1][2] == json.loads((tmp_path / "out" / "run.json").read_text())["summary"]["accepted"]
 
 

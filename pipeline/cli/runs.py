@@ -188,7 +188,8 @@ def run(
     A run that is stopped (even killed) continues where it stopped when started again the same way.
     Exit codes: 0 done, 3 finished short (a stage accepted fewer than wanted), 2 bad input, 1 other failure.
 
-    Example: rarefill run recipes/more-tractors.toml --limit 16
+    Example: rarefill run recipes/more-tractors.toml --dry-run, then --limit 16 for a quick trial; a job that
+    went wrong: rarefill run recipes/more-tractors.toml --job s0-000004
     """
     from ..errors import UsageError
     from ..recipe import load_recipe
