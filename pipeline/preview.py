@@ -16,7 +16,7 @@ import numpy as np
 from .chunk_maker import open_model
 from .dataset import Dataset
 from .generator import Generator
-from .geometry import GroundModel
+from .geometry import CameraGroups, ground_for
 from .recipe import Recipe, StageSpec
 from .runner import Setup, prepare, run_identity
 from .surface import mask_for
@@ -105,7 +105,8 @@ def _stage_preview(setup: Setup, spec: StageSpec, mine: list[int]) -> StagePrevi
     jobs = [plan.jobs[i] for c in chunks for i in plan.chunks[c]]
     sources = {scene for job in jobs for scene, _ in job.sources}
     if spec.kind == "insert":
-        sizes = _expected_sizes(setup.ground, spec.target_class, setup.footprint_rows)
+        scenes = [setup.dataset.scenes[i] for i in sorted(sources)]
+        sizes = _expected_sizes(setup.ground, scenes, spec.target_class, setup.footprint_rows)
         sizes_from = "expected by the ground model where real objects stand"
     else:
         sizes = _real_sizes(setup.dataset, spec.target_class, sources)
@@ -122,12 +123,16 @@ def _stage_preview(setup: Setup, spec: StageSpec, mine: list[int]) -> StagePrevi
     )
 
 
-def _expected_sizes(ground: GroundModel, name: str, rows: tuple[float, float]) -> tuple[float, float] | None:
-    horizon = ground.horizon_for(None)
-    below = [row for row in rows if row > horizon + 1]
-    if not below:
+def _expected_sizes(
+    ground: CameraGroups, scenes: list, name: str, rows: tuple[float, float]
+) -> tuple[float, float] | None:
+    heights = []
+    for scene in scenes:
+        model = ground_for(ground, scene)
+        horizon = model.horizon_for(scene.id)
+        heights += [model.expected_height(name, r, image_id=scene.id).expected for r in rows if r > horizon + 1]
+    if not heights:
         return None
-    heights = [ground.expected_height(name, row).expected for row in below]
     return (min(heights), max(heights))
 
 

@@ -22,7 +22,7 @@ from .dataset import Dataset, category_entry, load_dataset
 from .errors import UsageError
 from .filters import FilterLimits
 from .generator import Generator
-from .geometry import GroundModel, fit_ground
+from .geometry import CameraGroups, fit_cameras
 from .placement import aspect_ratios
 from .plan import Plan, make_plan
 from .recipe import Recipe
@@ -37,7 +37,7 @@ class Setup:
 
     recipe: Recipe
     dataset: Dataset
-    ground: GroundModel
+    ground: CameraGroups
     limits: FilterLimits
     plan: Plan
     ratios: dict[str, np.ndarray]
@@ -93,8 +93,16 @@ def prepare(recipe: Recipe) -> Setup:
         limits = FilterLimits(**recipe.filters)
     except ValueError as exc:
         raise UsageError(f"{recipe.path}: filters: {exc}") from None
-    ground = fit_ground(dataset, priors=dict(recipe.height_priors) or None)
-    sources = [stage_module(spec.kind).eligible(dataset, spec, limits) for spec in recipe.stages]
+    ground = fit_cameras(dataset, priors=dict(recipe.height_priors) or None)
+    # An image whose camera group has too few boxes for a ground model cannot be a source.
+    sources = [
+        [
+            s
+            for s in stage_module(spec.kind).eligible(dataset, spec, limits)
+            if ground.has_image(dataset.scenes[s[0]].id)
+        ]
+        for spec in recipe.stages
+    ]
     plan = make_plan(recipe, sources)
     return Setup(recipe, dataset, ground, limits, plan, aspect_ratios(dataset), footprint_rows(dataset))
 
