@@ -17,7 +17,7 @@ from typing import Any
 
 from .errors import RunError
 
-SIZE_BANDS_PX = (16, 32, 64)
+SIZE_BANDS_PX = (16, 32, 64, 128)
 """Edges of the size bands, by the height in pixels of the object an attempt was about: bands an octave
 apart, as the levels of a detector's feature pyramid are (common practice)."""
 

@@ -111,9 +111,10 @@ def test_tally_counts_bands_by_the_smallest_object():
     first, second = tally_stages(lines, [{"kind": "insert", "class": "tractor"}, {"kind": "insert", "class": "bus"}])
     assert (first.wanted, first.accepted, first.attempted, first.short) == (1, 1, 2, 0)
     assert first.rejected_by == {"present": 1, "scale": 1}
-    assert first.bands == {"16-32 px": (0, 1), ">=64 px": (1, 1)}
+    assert first.bands == {"16-32 px": (0, 1), "64-128 px": (1, 1)}
     assert (second.short, second.bands) == (1, {"no box": (0, 1)})
-    assert [size_band(h) for h in (15.9, 16, 63.9, 64)] == ["<16 px", "16-32 px", "32-64 px", ">=64 px"]
+    bands = [size_band(h) for h in (15.9, 16, 63.9, 64, 128)]
+    assert bands == ["<16 px", "16-32 px", "32-64 px", "64-128 px", ">=128 px"]
 
 
 # 2. exit codes: 0 when every stage reached its count, 3 short (0 with --allow-short), 2 bad input, 1 otherwise

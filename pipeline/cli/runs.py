@@ -75,7 +75,7 @@ def _run_with_progress(recipe, *, workers: int, shard: tuple[int, int]):
 
     from ..runner import run_recipe
 
-    columns = (TextColumn("jobs"), BarColumn(), MofNCompleteColumn(), TextColumn("{task.description}"))
+    columns = (TextColumn("jobs"), BarColumn(bar_width=24), MofNCompleteColumn(), TextColumn("{task.description}"))
     bar = Progress(*columns, TimeElapsedColumn(), TextColumn("{task.fields[eta]}"), console=stderr())
     task = None
     started = 0.0
@@ -87,12 +87,11 @@ def _run_with_progress(recipe, *, workers: int, shard: tuple[int, int]):
             bar.start()
             started = time.monotonic()
             task = bar.add_task("", total=state.wanted, completed=state.done, eta="eta --")
-        top = ", ".join(f"{k} {v}" for k, v in state.rejections.most_common(3)) or "none"
         made = state.done - state.resumed
         eta = "eta --"
         if made:
             eta = f"eta {_clock((time.monotonic() - started) / made * (state.wanted - state.done))}"
-        description = f"accepted {state.accepted} ({state.attempted} attempts; rejected: {top})"
+        description = f"accepted {state.accepted}, {state.attempted} attempts"
         bar.update(task, completed=state.done, description=description, eta=eta)
 
     try:
@@ -126,7 +125,8 @@ def _print_preview(preview) -> None:
     if preview.chunks_done is None:
         state = "new"
     else:
-        state = f"an earlier start of this run, {preview.chunks_done} chunk(s) done (they would be skipped)"
+        total = sum(stage.chunks for stage in preview.stages)
+        state = f"an earlier start of this run: {preview.chunks_done} of {total} chunks done, they would be skipped"
     out.print(f"output:   {preview.output} ({state})", markup=False, soft_wrap=True)
 
 
