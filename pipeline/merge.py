@@ -344,7 +344,7 @@ def merge(
             raise UsageError(f"--cap {name}=...: no category named {name!r} (known: {', '.join(out_names.values())})")
 
     # 3. leakage guard
-    guard_hashes, guard_keys = _guard_index(guard_sets)
+    guard_hashes, guard_keys = guard_index(guard_sets)
     _refuse_real_leaks(real, guard_hashes)
     candidates: list[Candidate] = []
     where: list[tuple[int, Scene]] = []
@@ -515,8 +515,12 @@ def _vocabulary(
     return categories, to_out
 
 
-def _guard_index(guards: Sequence[Dataset]) -> tuple[dict[str, str], set[tuple[int, str]]]:
-    """File hash -> "file: image" of every guarded image on disk, and every guarded (id, file name)."""
+def guard_index(guards: Sequence[Dataset]) -> tuple[dict[str, str], set[tuple[int, str]]]:
+    """File hash -> "file: image" of every guarded image on disk, and every guarded (id, file name).
+
+    Shared by the merge's leakage guard and the realism audit's check that its held-out split made no
+    synthetic image. Warns (:class:`DatasetWarning`) about guarded images whose files are absent.
+    """
     hashes: dict[str, str] = {}
     keys: set[tuple[int, str]] = set()
     for dataset in guards:

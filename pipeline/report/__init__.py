@@ -31,6 +31,7 @@ from ..geometry import CameraGroups, fit_cameras
 from ..provenance import KEY
 from ..report_plots import ScalePanel, save_class_counts, save_scale_plot, save_size_histograms
 from ..tally import tally_stages
+from .audit_section import audit_html
 from .markup import (
     _accepted_card,
     _document,
@@ -209,6 +210,7 @@ def write_report(
         [
             _funnel_html(counts),
             _stages_html(tally_stages(run.manifest, run.identity.get("stages") or ())),
+            audit_html(run.root),
             _plots_html(note, ""),
             gallery("accepted", 1, ""),
             gallery("rejected", 1, ""),
