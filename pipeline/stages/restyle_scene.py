@@ -1,0 +1,199 @@
+"""What the restyle renderers know about a scene: its camera, depth, sky, objects' silhouettes and road.
+
+Distances come from a measured depth map where the data set gives one, else from the photo itself
+(:func:`pipeline.weather.distance.distance_map`: ground plane, upright scenery at its ground contact, sky
+at the far limit, labelled objects at their footprint distance over their silhouettes).
+
+A per-image depth map is named by the image entry's extra key ``"depth_map"`` (beside ``"drivable_mask"``):
+a single-channel 16-bit PNG of the image's size holding the distance along the optical axis in
+millimetres (0 = not measured, for example sky or a sparse LiDAR scan), with a path relative to the data
+set's image folder. Every measured pixel's distance is used exactly; unmeasured ones are estimated.
+
+The camera: the focal length from the image entry's ``intrinsics`` (``fx``) where given, else from an
+assumed 60-degree horizontal field of view (:func:`pipeline.filters.focal_from_fov`); the horizon from the
+principal row ``intrinsics.cy`` of a level camera where intrinsics are given (steadier than a fit from a
+few boxes), else from the ground model's fit of that image; the camera height from the ground model, else
+:data:`pipeline.weather.distance.DEFAULT_CAMERA_HEIGHT_M`.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import cv2
+import numpy as np
+from PIL import Image, UnidentifiedImageError
+
+from ..dataset import Annotation, Dataset, Scene
+from ..errors import DatasetError
+from ..filters import focal_from_fov
+from ..geometry import GroundModel
+from ..surface import resolve_inside
+from ..weather import distance as dist
+from ..weather.fog import box_pixels
+from ..weather.sky import sky_mask
+from .base import StageContext
+from .rebackground import object_pixels
+
+DEPTH_KEY = "depth_map"
+"""Image-entry extra key naming a 16-bit PNG depth map in millimetres (relative to the image folder)."""
+
+INTRINSICS_KEY = "intrinsics"
+"""Image-entry extra key holding the pinhole intrinsics ``{"fx", "fy", "cx", "cy"}`` in pixels."""
+
+
+@dataclass(frozen=True)
+class Camera:
+    """A level pinhole camera over flat ground, and where each number came from."""
+
+    horizon_row: float
+    focal_px: float
+    camera_height_m: float
+    sources: dict[str, str]
+
+
+@dataclass(frozen=True)
+class Geometry:
+    """What the renderers know about the scene: distances, object pixels and mattes, sky, road, camera."""
+
+    distance_map: dist.DistanceMap
+    regions: tuple[np.ndarray, ...]
+    mattes: tuple[np.ndarray, ...]
+    annotations: tuple[Annotation, ...]
+    sky: np.ndarray
+    drivable: np.ndarray
+    camera: Camera
+
+    @property
+    def distance(self) -> np.ndarray:
+        """(H, W) float64 metres."""
+        return self.distance_map.distance
+
+    @property
+    def horizon_row(self) -> float:
+        return self.camera.horizon_row
+
+    @property
+    def focal_px(self) -> float:
+        return self.camera.focal_px
+
+    @property
+    def camera_height_m(self) -> float:
+        return self.camera.camera_height_m
+
+
+def scene_camera(scene: Scene, ground: GroundModel) -> Camera:
+    """The camera of ``scene`` (see the module docstring for where each value comes from)."""
+    intrinsics = scene.extra.get(INTRINSICS_KEY)
+    fx = _positive(intrinsics.get("fx")) if isinstance(intrinsics, dict) else None
+    cy = _finite(intrinsics.get("cy")) if isinstance(intrinsics, dict) else None
+    focal = fx if fx is not None else focal_from_fov(scene.width)
+    if cy is None:
+        horizon, horizon_source = ground.horizon_for(scene.id), "ground model"
+    else:
+        horizon, horizon_source = cy, "intrinsics.cy (level camera)"
+    height = ground.camera_height_m or dist.DEFAULT_CAMERA_HEIGHT_M
+    sources = {
+        "focal_px": "intrinsics.fx" if fx is not None else "60-degree field of view",
+        "horizon_row": horizon_source,
+        "camera_height_m": "ground model" if ground.camera_height_m else "default",
+    }
+    return Camera(float(horizon), float(focal), float(height), sources)
+
+
+def read_depth_map(scene: Scene, dataset: Dataset | None = None) -> np.ndarray | None:
+    """The scene's measured depth (metres, NaN where not measured), or None when it names no depth map.
+
+    Raises
+    ------
+    DatasetError
+        The path resolves outside the image folder, is missing or unreadable, or is not a single-channel
+        16-bit image of the scene's size.
+    """
+    name = scene.extra.get(DEPTH_KEY)
+    if name is None:
+        return None
+    where = f"images[id={scene.id}].{DEPTH_KEY}"
+    source = (dataset.source if dataset is not None else None) or scene.path
+    root = (dataset.images_dir if dataset is not None else scene.path.parent).resolve()
+    path = resolve_inside(name, root, source, where)
+    try:
+        with Image.open(path) as img:
+            img.load()
+            if img.mode not in ("I;16", "I;16B", "I"):
+                raise DatasetError(
+                    source, where, f"depth map {name} must be a 16-bit single-channel PNG, got {img.mode}"
+                )
+            millimetres = np.asarray(img, dtype=np.float64)
+    except FileNotFoundError:
+        raise DatasetError(source, where, f"depth map {path} not found") from None
+    except (UnidentifiedImageError, OSError, SyntaxError, ValueError) as exc:
+        raise DatasetError(source, where, f"depth map {path} cannot be read ({exc})") from None
+    if millimetres.shape != (scene.height, scene.width):
+        shape = f"{millimetres.shape[1]}x{millimetres.shape[0]}"
+        raise DatasetError(
+            source, where, f"depth map {name} is {shape} px but the image is {scene.width}x{scene.height}"
+        )
+    return np.where(millimetres > 0, millimetres / 1000.0, np.nan)
+
+
+def object_matte(image: np.ndarray, ann: Annotation) -> tuple[np.ndarray, bool]:
+    """An object's matte: 1 on its silhouette, anti-aliased at the border; and whether it was given.
+
+    The silhouette is its segmentation, else a GrabCut estimate inside its box
+    (:func:`pipeline.stages.rebackground.object_pixels`). Where neither holds (a box too small or a failed
+    cut), a soft matte that is 1 in the box's core and falls to 0 at its edges over a quarter of its shorter
+    side: an uncertain object must not leave the shape of its box in the fog.
+
+    Returns
+    -------
+    matte : (H, W) float32 ndarray in [0, 1]
+    given : bool
+        True for a segmentation.
+    """
+    pixels, how = object_pixels(image, ann)
+    if how != "box":
+        matte = (
+            cv2.GaussianBlur(pixels.astype(np.float32), (3, 3), 0) if how == "grabcut" else pixels.astype(np.float32)
+        )
+        return matte, how == "segmentation"
+    box = box_pixels(image.shape[:2], ann.bbox).astype(np.uint8)
+    inside = cv2.distanceTransform(np.pad(box, 1), cv2.DIST_L2, 3)[1:-1, 1:-1]
+    ramp = max(1.0, 0.25 * min(ann.bbox[2], ann.bbox[3]))
+    return np.clip((inside - 0.5) / ramp, 0.0, 1.0).astype(np.float32), False
+
+
+def scene_geometry(image: np.ndarray, scene: Scene, ctx: StageContext) -> Geometry:
+    """Camera, depth map (given or estimated), sky, object mattes and road of one scene."""
+    camera = scene_camera(scene, ctx.ground)
+    labelled = tuple(a for a in scene.annotations if not a.iscrowd)
+    found = [object_matte(image, a) for a in labelled]
+    mattes = tuple(m for m, _ in found)
+    surface = ctx.surface(scene)
+    sky = sky_mask(image, camera.horizon_row)
+    objects = [dist.PlacedObject(matte, a.bottom_row, given) for (matte, given), a in zip(found, labelled, strict=True)]
+    distance = dist.distance_map(
+        image,
+        horizon_row=camera.horizon_row,
+        focal_px=camera.focal_px,
+        camera_height_m=camera.camera_height_m,
+        sky=sky,
+        drivable=surface.mask,
+        drivable_given=not surface.estimated,
+        objects=objects,
+        depth=read_depth_map(scene, ctx.dataset),
+    )
+    regions = tuple(m >= 0.5 for m in mattes)
+    return Geometry(distance, regions, mattes, labelled, sky, surface.mask, camera)
+
+
+def _positive(value: object) -> float | None:
+    number = _finite(value)
+    return number if number is not None and number > 0 else None
+
+
+def _finite(value: object) -> float | None:
+    if isinstance(value, bool) or not isinstance(value, int | float) or not math.isfinite(value):
+        return None
+    return float(value)
