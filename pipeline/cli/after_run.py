@@ -1,0 +1,214 @@
+"""Commands for after a run: merge, report, probe."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+from typing import Annotated
+
+import typer
+from rich.table import Table
+
+from .base import app, reports_errors, stderr, stdout
+
+
+def _print_merge_summary(summary) -> None:
+    out = stdout()
+    table = Table(title=f"{summary.out}: {summary.real_images} real + {summary.synthetic_selected} synthetic images")
+    for column in ("category", "real", "synthetic", "total", "cap", ""):
+        table.add_column(column, justify="left" if column in ("category", "") else "right")
+    for c in summary.classes:
+        cap = "-" if c.cap is None else str(c.cap)
+        table.add_row(c.name, str(c.real), str(c.synthetic), str(c.total), cap, "[bold red]rare[/]" if c.rare else "")
+    out.print(table)
+    wanted = "" if summary.synthetic_wanted is None else f" (wanted {summary.synthetic_wanted})"
+    used = f"used {summary.synthetic_selected} of {summary.synthetic_available} available synthetic images"
+    out.print(f"synthetic share {summary.share:.4f}: {used}{wanted}")
+    groups = ", ".join(f"{g} {s}/{a}" for g, (a, s) in summary.groups.items()) or "none"
+    out.print(f"by target class (used/available): {groups}")
+    out.print(
+        f"left out by the leakage guard: {summary.excluded['hash']} (same file hash), "
+        f"{summary.excluded['id+file_name']} (same id and file name)"
+    )
+    for message in summary.shortfalls:
+        out.print(f"[bold yellow]not met:[/] {message}")
+
+
+@app.command("merge")
+@reports_errors
+def merge_command(
+    ctx: typer.Context,
+    real: Annotated[Path, typer.Argument(metavar="REAL.json", help="COCO file of the real training split.")],
+    out: Annotated[Path, typer.Option("--out", help="Merged COCO file to write.")],
+    synthetic: Annotated[
+        list[Path], typer.Option("--synthetic", metavar="RUN_DIR", help="A run folder of `rarefill run` (repeat).")
+    ],
+    guard: Annotated[
+        list[Path] | None,
+        typer.Option("--guard", metavar="HELDOUT.json", help="A held-out split to protect (repeat; at least one)."),
+    ] = None,
+    real_images: Annotated[
+        Path | None, typer.Option("--real-images", help="Image folder of REAL.json (default: images/ beside it).")
+    ] = None,
+    synthetic_share: Annotated[
+        float | None, typer.Option("--synthetic-share", help="Fraction of merged images that are synthetic, [0, 1).")
+    ] = None,
+    rare_target: Annotated[
+        int | None, typer.Option("--rare-target", help="Add synthetic images until each rare class has N instances.")
+    ] = None,
+    cap: Annotated[
+        list[str] | None, typer.Option("--cap", metavar="CLASS=N", help="At most N synthetic instances (repeat).")
+    ] = None,
+    rare_below: Annotated[
+        int, typer.Option("--rare-below", help="Classes with fewer real instances than this are rare.")
+    ] = 50,
+    mapping: Annotated[
+        Path | None, typer.Option("--mapping", help='JSON {"their name": "our name"} for other vocabularies.')
+    ] = None,
+    images_mode: Annotated[
+        str,
+        typer.Option(
+            "--images-mode",
+            help="relative: file_name points at the original files; copy / link: into <out stem>_images/.",
+        ),
+    ] = "relative",
+    seed: Annotated[int, typer.Option("--seed", help="Seeds which synthetic images are chosen.")] = 0,
+    as_json: Annotated[bool, typer.Option("--json", help="Print the summary as JSON instead of a table.")] = False,
+) -> None:
+    """Mix real and synthetic images at a chosen ratio into one COCO file, never leaking held-out images.
+
+    All real images are kept. Synthetic images made from an image of a --guard split (same file hash,
+    or same id and file name) are always left out and counted. Give --synthetic-share or --rare-target.
+
+    Example: rarefill merge seed_scenes/train.json --synthetic outputs/more-tractors
+    --guard seed_scenes/val.json --guard seed_scenes/test.json --synthetic-share 0.3 --out merged/train.json
+    """
+    from ..merge import merge, parse_caps
+
+    summary = merge(
+        real,
+        synthetic=synthetic,
+        guards=guard or [],
+        out=out,
+        real_images=real_images,
+        synthetic_share=synthetic_share,
+        rare_target=rare_target,
+        caps=parse_caps(cap or []),
+        rare_below=rare_below,
+        mapping=mapping,
+        images_mode=images_mode,
+        seed=seed,
+    )
+    if as_json:
+        typer.echo(json.dumps(summary.to_dict(), indent=2))
+        return
+    _print_merge_summary(summary)
+
+
+@app.command()
+@reports_errors
+def report(
+    ctx: typer.Context,
+    run_dir: Annotated[Path, typer.Argument(metavar="RUN_DIR", help="A run folder written by `rarefill run`.")],
+    real: Annotated[
+        Path | None,
+        typer.Option(
+            "--real",
+            help="The real COCO data set of the run: fit the ground model on it and count 'before' from it "
+            "(default: the run's kept real annotations).",
+        ),
+    ] = None,
+    real_images: Annotated[
+        Path | None, typer.Option("--real-images", help="Image folder of --real (links each output to its source).")
+    ] = None,
+    page_size: Annotated[int, typer.Option("--page-size", min=1, help="Thumbnails per gallery page.")] = 200,
+) -> None:
+    """Write RUN_DIR/report.html: funnel, plots, thumbnails of accepted and rejected candidates, provenance.
+
+    The page needs no network; open it in any browser. Assets go to RUN_DIR/report/.
+
+    Example: rarefill report outputs/more-tractors --real seed_scenes/train.json
+    """
+    from ..dataset import load_dataset
+    from ..errors import UsageError
+    from ..report import write_report
+
+    if real_images is not None and real is None:
+        raise UsageError("--real-images needs --real (the data set whose images they are)")
+    data = load_dataset(real, real_images, check_images=False) if real is not None else None
+    result = write_report(run_dir, real=data, page_size=page_size)
+    f = result.funnel
+    stdout().print(f"{f.accepted} accepted, {f.rejected} rejected of {f.attempted} candidates; {result.ground_note}")
+    stdout().print(f"wrote {result.path} ({result.pages} page(s), {result.thumbnails_made} new thumbnails)")
+
+
+@app.command()
+@reports_errors
+def probe(
+    ctx: typer.Context,
+    real: Annotated[Path, typer.Option("--real", metavar="TRAIN.json", help="COCO file of the real training split.")],
+    test: Annotated[Path, typer.Option("--test", metavar="TEST.json", help="Real held-out split to score on.")],
+    synthetic: Annotated[
+        list[Path], typer.Option("--synthetic", metavar="RUN_DIR", help="A run folder of `rarefill run` (repeat).")
+    ],
+    out: Annotated[Path, typer.Option("--out", help="Folder for results.md/json, rare_ap50.png, sets/, runs/.")],
+    guard: Annotated[
+        list[Path] | None,
+        typer.Option("--guard", metavar="HELDOUT.json", help="Another held-out split to keep out (repeat)."),
+    ] = None,
+    unfiltered: Annotated[
+        Path | None,
+        typer.Option("--unfiltered", metavar="RUN_DIR", help="Control: a run made with permissive filter limits."),
+    ] = None,
+    shares: Annotated[str, typer.Option("--shares", help="Synthetic shares to try; 0 is real only.")] = "0,0.25,0.5",
+    seeds: Annotated[int, typer.Option("--seeds", min=1, help="Repeats (seeds 0..N-1) per condition.")] = 3,
+    epochs: Annotated[
+        float | None, typer.Option("--epochs", help="Steps per model = epochs x real images / batch size.")
+    ] = None,
+    minutes: Annotated[
+        float | None, typer.Option("--minutes", help="Training wall time per model (timed once into steps).")
+    ] = None,
+    input_scale: Annotated[
+        float, typer.Option("--input-scale", help="Scale images by this before the detector, (0, 1].")
+    ] = 0.5,
+    batch_size: Annotated[int, typer.Option("--batch-size", min=1, help="Images per training step.")] = 8,
+    workers: Annotated[int, typer.Option("--workers", min=1, help="Models trained side by side (processes).")] = 1,
+    threads: Annotated[
+        int | None, typer.Option("--threads", min=1, help="Torch threads per model (default: cores / workers).")
+    ] = None,
+) -> None:
+    """Does the synthetic data help a detector on real held-out data? Train a compact CenterNet per
+    condition and seed, score it with COCOeval on --test, and compare rare-class AP50.
+
+    Conditions: real only; real + --synthetic at each share; real + --unfiltered at each share.
+
+    Example: rarefill probe --real seed_scenes/train.json --test seed_scenes/test.json
+    --guard seed_scenes/val.json --synthetic outputs/more-tractors --synthetic outputs/more-trailers
+    --unfiltered outputs/demo-unfiltered --epochs 30 --out outputs/probe
+    """
+    from ..errors import UsageError
+    from ..probe import TrainSettings, run_probe, write_results
+    from ..probe.experiment import parse_shares
+
+    if not 0 < input_scale <= 1:
+        raise UsageError(f"--input-scale must be in (0, 1], got {input_scale:g}")
+    err = stderr()
+    result = run_probe(
+        real,
+        test_json=test,
+        guards=guard or [],
+        synthetic=synthetic,
+        out=out,
+        unfiltered=unfiltered,
+        shares=parse_shares(shares),
+        seeds=seeds,
+        epochs=epochs,
+        minutes=minutes,
+        settings=TrainSettings(steps=1, batch_size=batch_size, input_scale=input_scale),
+        workers=workers,
+        threads=threads,
+        progress=lambda line: err.print(line, markup=False),
+    )
+    paths = write_results(result, out)
+    stdout().print(paths["markdown"].read_text(encoding="utf-8"), markup=False)
+    stdout().print(f"wrote {paths['markdown']}, {paths['json']} and {paths['plot']}")
