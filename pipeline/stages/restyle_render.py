@@ -17,6 +17,7 @@ import numpy as np
 
 from ..dataset import Annotation
 from ..weather import colour, fog, night, rain, snow
+from ..weather.distance import Source
 from .restyle_scene import Geometry
 
 LAMP_KINDS = {"car": "road", "van": "road", "bus": "road", "truck": "road", "tractor": "road", "works_trailer": "amber"}
@@ -71,7 +72,11 @@ def render_fog(image, geometry: Geometry, options, names, rng) -> Rendered:
 
 
 def render_rain(image, geometry: Geometry, options, names, rng) -> Rendered:
-    """Wet dark road with faint reflections, a duller sky, and depth-layered streaks."""
+    """Wet dark ground with faint reflections on the road, a duller sky, and depth-layered streaks.
+
+    Rain wets every ground pixel (pavements and verges too), so the darkening follows the ground of the
+    distance map, feathered, not the outline of a drivable surface that may only be estimated.
+    """
     rate = options["rain_mm_per_h"]
     wet = rain.wetness(rate)
     on_road = [
@@ -79,7 +84,8 @@ def render_rain(image, geometry: Geometry, options, names, rng) -> Rendered:
         for a, m in zip(geometry.annotations, geometry.mattes, strict=True)
         if _stands_on(a, geometry.drivable)
     ]
-    out = rain.wet_road(image, _feather(geometry.drivable, 2.0), wetness_level=wet)
+    ground = np.isin(geometry.distance_map.source, [int(Source.GROUND), int(Source.GROUND_GIVEN)])
+    out = rain.wet_road(image, _feather(ground | geometry.drivable, 2.0), wetness_level=wet)
     out = rain.road_reflections(out, geometry.drivable, on_road, strength=0.3 * wet)
     out = colour.scale_hsv(out, saturation=1.0 - 0.3 * wet, value=1.0 - 0.15 * wet)
     density = rain.visible_drop_density(rate)

@@ -49,6 +49,26 @@ CONTACT_SMOOTHNESS = 1.5
 real building corner pays it once, a jagged line every column (tuned by eye on real road photos)."""
 
 
+SCENERY_HEIGHT_M = 15.0
+"""Height above the ground that upright roadside scenery rarely exceeds (street trees 8-15 m, houses 6-9 m;
+from memory): a pixel seen high above the horizon cannot be farther than such a thing reaching it, so tree
+crowns over a long street stay with the trees, not with the street's far end."""
+
+CONTINUITY_LAB = 8.0
+"""Colour step (CIE Lab, OpenCV 8-bit units, averaged over 5 columns) between vertically neighbouring pixels
+at which an upright surface is taken to end: a wall runs on below the horizon, smooth and unbroken, until
+its foot (tuned by eye on real road photos)."""
+
+CONTACT_BLUR_SHARE = 0.01
+"""Sd of the Gaussian (share of the image width) that smooths log contact distance across columns: a
+contact line that wavers by a row must not paint vertical bands of fog on one facade."""
+
+CONTACT_OPENING_SHARE = 0.04
+"""Width (share of the image width) of the grey opening of log contact distance across columns: a far
+stretch narrower than this between nearer ones (a gap behind pedestrians, a shadow mistaken for ground)
+is taken as near as its neighbours; a street running away from the camera is wider and stays."""
+
+
 class Source(IntEnum):
     """Where a pixel's distance comes from."""
 
@@ -190,10 +210,31 @@ def ground_likelihood(
     if ground_hint is not None and not hint_given:
         logit += np.where(hint, 1.0, 0.0)
     p = 1.0 / (1.0 + np.exp(-np.clip(logit, -8, 8)))
+    p *= 1.0 - _carried_uprightness(lab, horizon_row, sky=sky, hidden=hidden)
     if ground_hint is not None and hint_given:
         p = np.where(hint, np.maximum(p, 0.97), p)
     p = np.where(hidden, 0.5, p)
     return np.where(rows > horizon_row, p, 0.0).astype(np.float32)
+
+
+def _carried_uprightness(lab: np.ndarray, horizon_row: float, *, sky: np.ndarray, hidden: np.ndarray) -> np.ndarray:
+    """How surely each pixel below the horizon continues the upright surface just above the horizon.
+
+    Carried down each column from the last row above the horizon (1 on upright scenery, 0 on sky) and
+    multiplied, row by row, by ``exp(-(step / CONTINUITY_LAB)^2)`` of the colour step to the pixel above; an
+    object cuts it. A smooth wall keeps it to its foot, a road's far end (cars, kerbs, shadows) loses it.
+    """
+    height, width = lab.shape[:2]
+    top = int(np.clip(math.ceil(horizon_row), 1, height))
+    carry = np.zeros((height, width), np.float32)
+    values = lab.astype(np.float32)
+    step = cv2.blur(np.linalg.norm(values[1:] - values[:-1], axis=2), (5, 1))
+    keep = np.exp(-((step / CONTINUITY_LAB) ** 2)) * ~hidden[1:]
+    carry[top - 1] = ~sky[top - 1] & ~hidden[top - 1]
+    for r in range(top, height):
+        carry[r] = carry[r - 1] * keep[r - 1]
+    carry[:top] = 0.0
+    return carry
 
 
 def contact_rows(ground_p: np.ndarray, horizon_row: float, *, smoothness: float = CONTACT_SMOOTHNESS) -> np.ndarray:
@@ -296,9 +337,22 @@ def distance_map(
             for b in contact
         ]
     )
+    if width > 1:
+        log_d = np.log(contact_distance).astype(np.float32).reshape(1, -1)
+        span = np.ones((1, max(1, int(round(CONTACT_OPENING_SHARE * width))) | 1), np.uint8)
+        log_d = cv2.dilate(
+            cv2.erode(log_d, span, borderType=cv2.BORDER_REPLICATE), span, borderType=cv2.BORDER_REPLICATE
+        )
+        sigma = max(0.5, CONTACT_BLUR_SHARE * width)
+        contact_distance = np.exp(cv2.GaussianBlur(log_d, (0, 0), sigma, borderType=cv2.BORDER_REPLICATE).ravel())
     rows = np.arange(height)[:, None]
     upright = rows < contact[None, :]
-    distance = np.where(upright, contact_distance[None, :], plane)
+    rise = horizon_row - (rows + 0.5)
+    with np.errstate(divide="ignore"):
+        reach = np.where(
+            rise > 0, focal_px * max(SCENERY_HEIGHT_M - camera_height_m, 1.0) / np.maximum(rise, 1e-9), far_m
+        )
+    distance = np.where(upright, np.minimum(contact_distance[None, :], reach), plane)
     ground_source = Source.GROUND_GIVEN if drivable is not None and drivable_given else Source.GROUND
     source = np.where(upright, Source.VERTICAL, Source.GROUND).astype(np.uint8)
     if ground_source == Source.GROUND_GIVEN:

@@ -33,26 +33,27 @@ SKY_MAX_GRADIENT = 5.0
 roofs, branches and poles are much steeper (tuned by eye on real road photos)."""
 
 
-def sky_likeness(image: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Pixels that look like sky by colour, and by colour and smoothness (no position): two (H, W) bool.
+def sky_likeness(image: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Pixels that look like sky by colour, by colour and smoothness, and clearly blue: three (H, W) bool.
 
-    Sky colour: bright (value >= :data:`SKY_MIN_VALUE` of the frame's bright level) and grey-white
-    (saturation <= :data:`SKY_MAX_SATURATION`) or blue (hue 190-250 degrees with blue the largest channel).
-    Smooth: mean gradient <= :data:`SKY_MAX_GRADIENT`.
+        Sky colour: bright (value >= :data:`SKY_MIN_VALUE` of the frame's bright level) and grey-white
+        (saturation <= :data:`SKY_MAX_SATURATION`) or blue to cyan (hue 165-250 degrees, more blue than red: some
+    cameras' colour balance turns a clear sky cyan).
+        Smooth: mean gradient <= :data:`SKY_MAX_GRADIENT`.
     """
     check_image(image)
     hsv = cv2.cvtColor(image, cv2.COLOR_RGB2HSV_FULL).astype(np.float32)
     hue, sat, value = hsv[..., 0] * (360.0 / 256.0), hsv[..., 1] / 255.0, hsv[..., 2] / 255.0
     bright_level = max(float(np.percentile(value, 99.5)), 0.2)
     bright = value >= SKY_MIN_VALUE * bright_level
-    blue = (hue >= 190) & (hue <= 250) & (image[..., 2] >= image[..., 0]) & (image[..., 2] >= image[..., 1])
+    blue = (hue >= 165) & (hue <= 250) & (image[..., 2] > image[..., 0])
     grey = sat <= SKY_MAX_SATURATION
     grey_level = cv2.cvtColor(image, cv2.COLOR_RGB2GRAY).astype(np.float32)
     gx = cv2.Sobel(grey_level, cv2.CV_32F, 1, 0, ksize=3) / 8.0
     gy = cv2.Sobel(grey_level, cv2.CV_32F, 0, 1, ksize=3) / 8.0
     smooth = cv2.blur(np.hypot(gx, gy), (5, 5)) <= SKY_MAX_GRADIENT
     coloured = bright & (grey | blue)
-    return coloured, coloured & smooth
+    return coloured, coloured & smooth, blue & (sat >= 0.15)
 
 
 def sky_mask(image: np.ndarray, horizon_row: float) -> np.ndarray:
@@ -74,15 +75,15 @@ def sky_mask(image: np.ndarray, horizon_row: float) -> np.ndarray:
     sky = np.zeros((height, width), dtype=bool)
     if rows == 0:
         return sky
-    coloured, likely = sky_likeness(image)
-    coloured, likely = coloured[:rows], likely[:rows].astype(np.uint8)
+    coloured, likely, blue = sky_likeness(image)
+    coloured, likely, blue = coloured[:rows], likely[:rows].astype(np.uint8), blue[:rows]
     value = image[:rows].max(axis=2)
     bright_level = max(float(np.percentile(image.max(axis=2), 99.5)), 51.0)
     # a one-pixel seam of leaves or wire must not split the sky, nor a gap let it leak into a wall
     likely = cv2.morphologyEx(likely, cv2.MORPH_CLOSE, np.ones((3, 3), np.uint8))
     count, labels = cv2.connectedComponents(likely, connectivity=4)
     touching = [k for k in np.unique(labels[0][likely[0] > 0]) if k > 0]
-    bright = [k for k in touching if np.median(value[labels == k]) >= SKY_MIN_MEDIAN_VALUE * bright_level]
+    bright = [k for k in touching if _sky_bright(value[labels == k], blue[labels == k], bright_level)]
     keep = np.isin(labels, bright)
     small = max(4, (rows * width) // 4000)
     if count > 1 and keep.any():
@@ -92,6 +93,14 @@ def sky_mask(image: np.ndarray, horizon_row: float) -> np.ndarray:
         sky[:rows] = keep
         sky = _drop_specks(sky, small)
     return sky
+
+
+def _sky_bright(value: np.ndarray, blue: np.ndarray, bright_level: float) -> bool:
+    """A region is bright enough for sky: its median value reaches :data:`SKY_MIN_MEDIAN_VALUE` of the
+    frame's bright level, or, for a clearly blue region (a clear sky is darker than a white one), the
+    per-pixel :data:`SKY_MIN_VALUE`."""
+    least = SKY_MIN_VALUE if np.mean(blue) >= 0.5 else SKY_MIN_MEDIAN_VALUE
+    return float(np.median(value)) >= least * bright_level
 
 
 def _drop_specks(mask: np.ndarray, min_px: int) -> np.ndarray:
