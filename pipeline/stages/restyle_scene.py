@@ -4,10 +4,11 @@ Distances come from a measured depth map where the data set gives one, else from
 (:func:`pipeline.weather.distance.distance_map`: ground plane, upright scenery at its ground contact, sky
 at the far limit, labelled objects at their footprint distance over their silhouettes).
 
-A per-image depth map is named by the image entry's extra key ``"depth_map"`` (beside ``"drivable_mask"``):
-a single-channel 16-bit PNG of the image's size holding the distance along the optical axis in
-millimetres (0 = not measured, for example sky or a sparse LiDAR scan), with a path relative to the data
-set's image folder. Every measured pixel's distance is used exactly; unmeasured ones are estimated.
+A per-image depth map is named by the image entry's extra key ``"depth_map"`` (beside ``"drivable_mask"``),
+with a path relative to the data set's image folder, of the image's size, holding the distance along the
+optical axis: a ``.npy`` file of float metres (NaN or 0 = not measured), or a single-channel 16-bit PNG of
+millimetres (0 = not measured; 65535 = beyond its 65.5 m range). Every measured pixel's distance is used
+exactly; unmeasured ones (sky, gaps of a sparse LiDAR scan, beyond range) are estimated.
 
 The camera: the focal length from the image entry's ``intrinsics`` (``fx``) where given, else from an
 assumed 60-degree horizontal field of view (:func:`pipeline.filters.focal_from_fov`); the horizon from the
@@ -105,11 +106,14 @@ def scene_camera(scene: Scene, ground: GroundModel) -> Camera:
 def read_depth_map(scene: Scene, dataset: Dataset | None = None) -> np.ndarray | None:
     """The scene's measured depth (metres, NaN where not measured), or None when it names no depth map.
 
+    A ``.npy`` file holds float metres (NaN, inf or <= 0: not measured); a PNG holds 16-bit millimetres
+    (0: not measured; 65535, the top of the range, "65.535 m or farther": also left to the estimate).
+
     Raises
     ------
     DatasetError
-        The path resolves outside the image folder, is missing or unreadable, or is not a single-channel
-        16-bit image of the scene's size.
+        The path resolves outside the image folder, is missing or unreadable, is not a single-channel
+        16-bit PNG (or a 2-D float ``.npy``), or is not of the scene's size.
     """
     name = scene.extra.get(DEPTH_KEY)
     if name is None:
@@ -119,23 +123,37 @@ def read_depth_map(scene: Scene, dataset: Dataset | None = None) -> np.ndarray |
     root = (dataset.images_dir if dataset is not None else scene.path.parent).resolve()
     path = resolve_inside(name, root, source, where)
     try:
-        with Image.open(path) as img:
-            img.load()
-            if img.mode not in ("I;16", "I;16B", "I"):
-                raise DatasetError(
-                    source, where, f"depth map {name} must be a 16-bit single-channel PNG, got {img.mode}"
-                )
-            millimetres = np.asarray(img, dtype=np.float64)
+        metres = _depth_npy(path, source, where) if path.suffix.lower() == ".npy" else _depth_png(path, source, where)
     except FileNotFoundError:
         raise DatasetError(source, where, f"depth map {path} not found") from None
     except (UnidentifiedImageError, OSError, SyntaxError, ValueError) as exc:
         raise DatasetError(source, where, f"depth map {path} cannot be read ({exc})") from None
-    if millimetres.shape != (scene.height, scene.width):
-        shape = f"{millimetres.shape[1]}x{millimetres.shape[0]}"
+    if metres.shape != (scene.height, scene.width):
+        shape = f"{metres.shape[1]}x{metres.shape[0]}" if metres.ndim == 2 else str(metres.shape)
         raise DatasetError(
             source, where, f"depth map {name} is {shape} px but the image is {scene.width}x{scene.height}"
         )
-    return np.where(millimetres > 0, millimetres / 1000.0, np.nan)
+    return np.where(np.isfinite(metres) & (metres > 0), metres, np.nan)
+
+
+def _depth_png(path, source, where) -> np.ndarray:
+    with Image.open(path) as img:
+        img.load()
+        if img.mode not in ("I;16", "I;16B", "I"):
+            raise DatasetError(
+                source, where, f"depth map {path.name} must be a 16-bit single-channel PNG, got {img.mode}"
+            )
+        millimetres = np.asarray(img, dtype=np.float64)
+    return np.where(millimetres >= 65535, np.nan, millimetres / 1000.0)
+
+
+def _depth_npy(path, source, where) -> np.ndarray:
+    values = np.load(path, allow_pickle=False)
+    if values.ndim != 2 or not np.issubdtype(values.dtype, np.floating):
+        raise DatasetError(
+            source, where, f"depth map {path.name} must be a 2-D float array, got {values.dtype} {values.shape}"
+        )
+    return values.astype(np.float64)
 
 
 def object_silhouette(image: np.ndarray, box, segmentation=None) -> np.ndarray | None:

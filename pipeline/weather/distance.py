@@ -344,7 +344,9 @@ def distance_map(
             cv2.erode(log_d, span, borderType=cv2.BORDER_REPLICATE), span, borderType=cv2.BORDER_REPLICATE
         )
         sigma = max(0.5, CONTACT_BLUR_SHARE * width)
-        contact_distance = np.exp(cv2.GaussianBlur(log_d, (0, 0), sigma, borderType=cv2.BORDER_REPLICATE).ravel())
+        smoothed = np.exp(cv2.GaussianBlur(log_d, (0, 0), sigma, borderType=cv2.BORDER_REPLICATE).ravel())
+        # smoothing may only bring a column nearer: an upright thing is never behind its own foot
+        contact_distance = np.minimum(contact_distance, smoothed)
     rows = np.arange(height)[:, None]
     upright = rows < contact[None, :]
     rise = horizon_row - (rows + 0.5)
