@@ -40,6 +40,9 @@ from .rebackground import segmentation_mask
 DEPTH_KEY = "depth_map"
 """Image-entry extra key naming a 16-bit PNG depth map in millimetres (relative to the image folder)."""
 
+GRABCUT_SIDE_PX = 96
+"""Longest side (px) at which an object's box is cut (larger boxes are shrunk first, for speed)."""
+
 INTRINSICS_KEY = "intrinsics"
 """Image-entry extra key holding the pinhole intrinsics ``{"fx", "fy", "cx", "cy"}`` in pixels."""
 
@@ -186,10 +189,17 @@ def object_silhouette(image: np.ndarray, box, segmentation=None) -> np.ndarray |
     axes = (max(1, int(0.15 * (c1 - c0))), max(1, int(0.25 * (r1 - r0))))
     cv2.ellipse(labels, centre, axes, 0, 0, 360, int(cv2.GC_FGD), -1)
     roi = np.ascontiguousarray(image[p0:p1, q0:q1][..., ::-1])
+    # a large box is cut at most GRABCUT_SIDE_PX on its longer side: the cut follows colour regions, which
+    # survive the shrinking, and its cost grows with the pixel count
+    scale = min(1.0, GRABCUT_SIDE_PX / max(r1 - r0, c1 - c0))
+    size = (max(1, round((q1 - q0) * scale)), max(1, round((p1 - p0) * scale)))
+    small_labels = cv2.resize(labels, size, interpolation=cv2.INTER_NEAREST)
+    small_roi = cv2.resize(roi, size, interpolation=cv2.INTER_AREA)
     cv2.setRNGSeed(0)  # GrabCut's k-means draws from OpenCV's own generator: reset it for the same mask each run
-    cv2.grabCut(roi, labels, None, np.zeros((1, 65)), np.zeros((1, 65)), 4, cv2.GC_INIT_WITH_MASK)
+    cv2.grabCut(small_roi, small_labels, None, np.zeros((1, 65)), np.zeros((1, 65)), 4, cv2.GC_INIT_WITH_MASK)
+    cut = ((small_labels == cv2.GC_FGD) | (small_labels == cv2.GC_PR_FGD)).astype(np.float32)
     mask = np.zeros((height, width), dtype=bool)
-    mask[p0:p1, q0:q1] = (labels == cv2.GC_FGD) | (labels == cv2.GC_PR_FGD)
+    mask[p0:p1, q0:q1] = cv2.resize(cut, (q1 - q0, p1 - p0), interpolation=cv2.INTER_LINEAR) >= 0.5
     mask &= inside
     share = mask.sum() / inside.sum()
     return mask if 0.15 <= share <= 0.97 else None
