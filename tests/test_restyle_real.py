@@ -68,7 +68,8 @@ def test_fog_never_washes_upright_scenery_out_more_than_the_ground_at_its_foot(k
                 continue
             upright = source[:foot, col] == Source.VERTICAL
             # the ground plane at the foot: Z = f h / (v - v_h) (Hartley & Zisserman 2004)
-            at_foot = geometry.focal_px * geometry.camera_height_m / (foot + 0.5 - geometry.horizon_row)
+            below = foot + 0.5 - geometry.horizon_row
+            at_foot = geometry.focal_px * geometry.camera_height_m / below if below > 0 else math.inf
             assert np.all(t[:foot, col][upright] >= math.exp(-beta * min(at_foot, 1000.0)) - 1e-9)
             # on the ground, fog thickens upward from the bottom row (Koschmieder on the ground plane)
             ground = t[foot:, col][(source[foot:, col] == Source.GROUND) & off_objects[foot:, col]]

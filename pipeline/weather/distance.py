@@ -54,6 +54,9 @@ SCENERY_HEIGHT_M = 15.0
 from memory): a pixel seen high above the horizon cannot be farther than such a thing reaching it, so tree
 crowns over a long street stay with the trees, not with the street's far end."""
 
+CONTACT_RAMP = 0.02
+"""Quadratic cost per squared row of change between neighbouring work columns (see :func:`contact_rows`)."""
+
 CONTINUITY_LAB = 8.0
 """Colour step (CIE Lab, OpenCV 8-bit units, averaged over 5 columns) between vertically neighbouring pixels
 at which an upright surface is taken to end: a wall runs on below the horizon, smooth and unbroken, until
@@ -177,9 +180,12 @@ def ground_likelihood(
     Known ground: the drivable surface (``ground_hint``) and the bottom 8% of rows; known upright scenery:
     non-sky pixels above the horizon. A naive Bayes of two histograms, colour (CIE Lab, 8 x 8 x 8 bins) and
     edge direction (the share of horizontal gradient, 4 bins: upright things have vertical outlines), each
-    learned from both example sets with add-one smoothing, plus a prior that rises with the row (the nearer
-    rows are more often ground). A given mask is trusted (0.97 on it); an estimated one adds evidence.
-    ``unknown`` pixels (labelled objects) are 0.5: they hide the contact, they do not tell it.
+    learned from both example sets (smoothed so that an unseen colour is neutral), plus a prior for ground
+    (log-odds 0.3 at the horizon to 1.5 at the bottom: most of a road photo below the horizon is ground, and
+    more so nearer the camera); the continuity of upright surfaces across the
+    horizon (:func:`_carried_uprightness`) takes the rest. A given mask is trusted (0.97 on it); an
+    estimated one adds evidence. ``unknown`` pixels (labelled objects) are 0.5: they hide the contact, they
+    do not tell it.
 
     Returns
     -------
@@ -198,15 +204,17 @@ def ground_likelihood(
     hint = np.zeros((height, width), bool) if ground_hint is None else ground_hint
     bottom_band = rows >= height - max(2, int(round(0.08 * height)))
     is_ground = ((hint | bottom_band) & (rows > horizon_row)) & ~hidden
-    is_upright = (rows < horizon_row - 1) & ~sky & ~hidden
+    is_upright = (rows < horizon_row - _horizon_margin(height)) & ~sky & ~hidden
     logit = np.zeros((height, width), np.float64)
     if is_ground.any() and is_upright.any():
         for bins, n in ((colour_bin, 512), (edge_bin, 4)):
-            on = np.bincount(bins[is_ground], minlength=n) + 1.0
-            off = np.bincount(bins[is_upright], minlength=n) + 1.0
+            on = np.bincount(bins[is_ground], minlength=n).astype(np.float64)
+            off = np.bincount(bins[is_upright], minlength=n).astype(np.float64)
+            # pseudo-counts in proportion to each set's size: a colour neither set shows is no evidence
+            on, off = on + on.sum() / n, off + off.sum() / n
             logit += np.log(on / on.sum())[bins] - np.log(off / off.sum())[bins]
     span = max(1.0, height - horizon_row)
-    logit += np.clip(2.0 * (rows - horizon_row) / span - 0.6, -1.0, 1.4)
+    logit += np.clip(0.3 + 1.2 * (rows - horizon_row) / span, 0.3, 1.5)
     if ground_hint is not None and not hint_given:
         logit += np.where(hint, 1.0, 0.0)
     p = 1.0 / (1.0 + np.exp(-np.clip(logit, -8, 8)))
@@ -220,21 +228,31 @@ def ground_likelihood(
 def _carried_uprightness(lab: np.ndarray, horizon_row: float, *, sky: np.ndarray, hidden: np.ndarray) -> np.ndarray:
     """How surely each pixel below the horizon continues the upright surface just above the horizon.
 
-    Carried down each column from the last row above the horizon (1 on upright scenery, 0 on sky) and
-    multiplied, row by row, by ``exp(-(step / CONTINUITY_LAB)^2)`` of the colour step to the pixel above; an
-    object cuts it. A smooth wall keeps it to its foot, a road's far end (cars, kerbs, shadows) loses it.
+    Carried down each column from a few rows above the horizon (:func:`_horizon_margin`: a field reaching
+    the horizon must not pass for a wall when the horizon is a little off; 1 on upright scenery, 0 on sky) and
+    multiplied, row by row, by ``exp(-(max(0, step - C / 2) / (0.75 C))^2)`` (``C`` =
+    :data:`CONTINUITY_LAB`) of the colour step to the pixel above: the faint shading and grain of a wall
+    (steps under ``C / 2``) keep it whole, an outline ends it; an object cuts it. A smooth wall keeps it to
+    its foot, a road's far end (cars, kerbs, shadows) loses it.
     """
     height, width = lab.shape[:2]
     top = int(np.clip(math.ceil(horizon_row), 1, height))
+    seed = max(0, top - _horizon_margin(height))
     carry = np.zeros((height, width), np.float32)
     values = lab.astype(np.float32)
     step = cv2.blur(np.linalg.norm(values[1:] - values[:-1], axis=2), (5, 1))
-    keep = np.exp(-((step / CONTINUITY_LAB) ** 2)) * ~hidden[1:]
-    carry[top - 1] = ~sky[top - 1] & ~hidden[top - 1]
-    for r in range(top, height):
+    keep = np.exp(-((np.maximum(step - CONTINUITY_LAB / 2, 0.0) / (0.75 * CONTINUITY_LAB)) ** 2)) * ~hidden[1:]
+    carry[seed] = ~sky[seed] & ~hidden[seed]
+    for r in range(seed + 1, height):
         carry[r] = carry[r - 1] * keep[r - 1]
     carry[:top] = 0.0
     return carry
+
+
+def _horizon_margin(height: int) -> int:
+    """Rows above the horizon that count as "surely above it": 3% of the image height (a fitted horizon is
+    typically this close to the true one; at least 2 rows)."""
+    return max(2, int(round(0.03 * height)))
 
 
 def contact_rows(ground_p: np.ndarray, horizon_row: float, *, smoothness: float = CONTACT_SMOOTHNESS) -> np.ndarray:
@@ -242,8 +260,8 @@ def contact_rows(ground_p: np.ndarray, horizon_row: float, *, smoothness: float 
 
     Column ``c`` with contact ``b`` costs ``sum_{v_h <= r < b} p + sum_{r >= b} (1 - p)`` (ground pixels
     called scenery above the line, scenery called ground below it); neighbouring columns pay
-    ``smoothness x |b - b'|``. The cheapest line over all columns is found exactly by dynamic programming
-    (as free space per column in Badino et al. 2009).
+    ``smoothness x |b - b'| + CONTACT_RAMP x (b - b')^2``. The cheapest line over all columns is found
+    exactly by dynamic programming (as free space per column in Badino et al. 2009).
 
     Parameters
     ----------
@@ -269,7 +287,10 @@ def contact_rows(ground_p: np.ndarray, horizon_row: float, *, smoothness: float 
     below = np.vstack([np.cumsum((1 - p)[::-1], axis=0)[::-1], np.zeros((1, width))])
     cost = above + below
     steps = np.arange(n_rows + 1)
-    jump = smoothness * np.abs(steps[:, None] - steps[None, :])
+    change = np.abs(steps[:, None] - steps[None, :]).astype(np.float64)
+    # a little quadratic cost on top of the linear one: where the evidence is flat (behind a labelled
+    # object) the line ramps from one side to the other instead of jumping at the object's edge
+    jump = smoothness * change + CONTACT_RAMP * change**2
     total = cost[:, 0].copy()
     back = np.zeros((n_rows + 1, width), np.int64)
     for c in range(1, width):
