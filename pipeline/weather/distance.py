@@ -51,8 +51,9 @@ real building corner pays it once, a jagged line every column (tuned by eye on r
 
 SCENERY_HEIGHT_M = 15.0
 """Height above the ground that upright roadside scenery rarely exceeds (street trees 8-15 m, houses 6-9 m;
-from memory): a pixel seen high above the horizon cannot be farther than such a thing reaching it, so tree
-crowns over a long street stay with the trees, not with the street's far end."""
+from memory): scenery rising high above the horizon cannot be farther than such a thing reaching that
+high, so tree crowns over a long street stay with the trees, not with the street's far end. Taller
+buildings come out nearer than they are: clearer in fog, never washed out."""
 
 CONTACT_RAMP = 0.02
 """Quadratic cost per squared row of change between neighbouring work columns (see :func:`contact_rows`)."""
@@ -352,30 +353,10 @@ def distance_map(
     for obj in objects:
         hidden |= obj.matte >= 0.5
     contact = _contact_line(image, horizon_row, sky=sky, drivable=drivable, given=drivable_given, hidden=hidden)
-    contact_distance = np.array(
-        [
-            footprint_distance(min(b, height - 1) + 0.5, horizon_row, focal_px, camera_height_m, far_m=far_m)
-            for b in contact
-        ]
-    )
-    if width > 1:
-        log_d = np.log(contact_distance).astype(np.float32).reshape(1, -1)
-        span = np.ones((1, max(1, int(round(CONTACT_OPENING_SHARE * width))) | 1), np.uint8)
-        log_d = cv2.dilate(
-            cv2.erode(log_d, span, borderType=cv2.BORDER_REPLICATE), span, borderType=cv2.BORDER_REPLICATE
-        )
-        sigma = max(0.5, CONTACT_BLUR_SHARE * width)
-        smoothed = np.exp(cv2.GaussianBlur(log_d, (0, 0), sigma, borderType=cv2.BORDER_REPLICATE).ravel())
-        # smoothing may only bring a column nearer: an upright thing is never behind its own foot
-        contact_distance = np.minimum(contact_distance, smoothed)
+    column = _upright_distance(contact, sky, horizon_row, focal_px, camera_height_m, far_m)
     rows = np.arange(height)[:, None]
     upright = rows < contact[None, :]
-    rise = horizon_row - (rows + 0.5)
-    with np.errstate(divide="ignore"):
-        reach = np.where(
-            rise > 0, focal_px * max(SCENERY_HEIGHT_M - camera_height_m, 1.0) / np.maximum(rise, 1e-9), far_m
-        )
-    distance = np.where(upright, np.minimum(contact_distance[None, :], reach), plane)
+    distance = np.where(upright, column[None, :], plane)
     ground_source = Source.GROUND_GIVEN if drivable is not None and drivable_given else Source.GROUND
     source = np.where(upright, Source.VERTICAL, Source.GROUND).astype(np.uint8)
     if ground_source == Source.GROUND_GIVEN:
@@ -388,6 +369,46 @@ def distance_map(
         distance = np.where(measured, depth, distance)
         source[measured] = Source.MEASURED
     return DistanceMap(distance.astype(np.float64), source, contact.astype(np.float64))
+
+
+def _upright_distance(
+    contact: np.ndarray, sky: np.ndarray, horizon_row: float, focal_px: float, camera_height_m: float, far_m: float
+) -> np.ndarray:
+    """Distance of each column's upright scenery: its ground contact's, capped by its height, smoothed.
+
+    The cap: the column's scenery rises without a break of sky from its contact to its top row ``v_t``; a
+    thing at most :data:`SCENERY_HEIGHT_M` tall reaching ``v_t`` stands no farther than
+    ``f (H - h_cam) / (v_h - v_t)`` (Hoiem, Efros, Hebert 2006: height above the horizon). A facade filling
+    the frame to its top edge is therefore near, whatever its foot's estimate says. Then a grey opening of
+    :data:`CONTACT_OPENING_SHARE` and a Gaussian of :data:`CONTACT_BLUR_SHARE` of the width in log distance,
+    never taking a column farther than its own contact.
+
+    Returns
+    -------
+    (W,) float64 ndarray of metres
+    """
+    height, width = sky.shape
+    foot = np.array(
+        [
+            footprint_distance(min(b, height - 1) + 0.5, horizon_row, focal_px, camera_height_m, far_m=far_m)
+            for b in contact
+        ]
+    )
+    rows = np.arange(height)[:, None]
+    sky_above = sky & (rows < contact[None, :])
+    top = np.where(sky_above.any(axis=0), height - 1 - np.argmax(sky_above[::-1], axis=0) + 1, 0)
+    rise = horizon_row - top
+    cap = np.where(rise > 0.5, focal_px * max(SCENERY_HEIGHT_M - camera_height_m, 1.0) / np.maximum(rise, 0.5), far_m)
+    distance = np.minimum(foot, cap)
+    if width == 1:
+        return distance
+    log_d = np.log(distance).astype(np.float32).reshape(1, -1)
+    span = np.ones((1, max(1, int(round(CONTACT_OPENING_SHARE * width))) | 1), np.uint8)
+    log_d = cv2.dilate(cv2.erode(log_d, span, borderType=cv2.BORDER_REPLICATE), span, borderType=cv2.BORDER_REPLICATE)
+    sigma = max(0.5, CONTACT_BLUR_SHARE * width)
+    smoothed = np.exp(cv2.GaussianBlur(log_d, (0, 0), sigma, borderType=cv2.BORDER_REPLICATE).ravel())
+    # smoothing may only bring a column nearer: an upright thing is never behind its own foot
+    return np.minimum(distance, smoothed)
 
 
 def _contact_line(
