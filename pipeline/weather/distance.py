@@ -354,6 +354,11 @@ def distance_map(
         hidden |= obj.matte >= 0.5
     contact = _contact_line(image, horizon_row, sky=sky, drivable=drivable, given=drivable_given, hidden=hidden)
     column = _upright_distance(contact, sky, horizon_row, focal_px, camera_height_m, far_m)
+    # where the cap or the smoothing brought a column nearer, its foot moves down to the row of the ground
+    # at that distance: the ground behind an upright thing is hidden, and none of it is farther than the thing
+    with np.errstate(divide="ignore"):
+        foot = np.floor(horizon_row + focal_px * camera_height_m / column - 0.5 + 1e-6)
+    contact = np.clip(np.maximum(contact, foot), 0, height).astype(np.int64)
     rows = np.arange(height)[:, None]
     upright = rows < contact[None, :]
     distance = np.where(upright, column[None, :], plane)
