@@ -162,7 +162,11 @@ def render_low_light(image, geometry: Geometry, options, names, rng) -> Rendered
     ground = (np.arange(height)[:, None] + 0.5 > geometry.horizon_row) & ~_union(geometry.regions, image.shape[:2])
     air = airlight(image, geometry) * np.asarray(cast)
     if condition == "night":
-        dark = night.night_sky(dark, _feather(geometry.sky, 1.5), ground, np.clip(air, 1e-3, 1.0))
+        # the sky mask stops a pixel or two short of leaves and roofs; those bright rims darken with it
+        rim = cv2.dilate(geometry.sky.astype(np.uint8), np.ones((5, 5), np.uint8)).astype(bool)
+        bright = image.min(axis=2) >= np.percentile(image[geometry.sky].min(axis=1), 10) if geometry.sky.any() else rim
+        weight = _feather(geometry.sky | (rim & bright), 1.5)
+        dark = night.night_sky(dark, weight, ground, np.clip(air, 1e-3, 1.0))
     lamps = []
     width = image.shape[1]
     for ann in geometry.annotations:
