@@ -7,7 +7,7 @@ import math
 import numpy as np
 import pytest
 
-from pipeline.weather import distance, fog, sky
+from pipeline.weather import contact, distance, fog, sky
 
 F, H_CAM = 300.0, 1.5
 
@@ -153,7 +153,7 @@ def test_contact_line_is_the_cheapest_split_and_smooth():
     p = np.zeros((10, 2), np.float32)
     p[6:, 0] = 1.0
     p[3:, 1] = 1.0
-    assert list(distance.contact_rows(p, 0.0, smoothness=0.0)) == [6, 3]
+    assert list(contact.contact_rows(p, 0.0, smoothness=0.0)) == [6, 3]
     # a jump of 3 rows costs 3 x 2.0, more than the 3 mislabelled pixels it saves: one row for both
-    line = distance.contact_rows(p, 0.0, smoothness=2.0)
+    line = contact.contact_rows(p, 0.0, smoothness=2.0)
     assert line[0] == line[1] and line[0] in range(3, 7)

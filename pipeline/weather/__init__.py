@@ -4,6 +4,8 @@
     sRGB and linear light, luminance, HSV scaling, compositing.
 ``distance``
     The per-pixel distance map of a photo without a depth sensor, and where it guesses.
+``contact``
+    Where upright scenery meets the ground, per column (for ``distance``).
 ``sky``
     Where the sky is, from colour, smoothness and position.
 ``fog``
