@@ -22,14 +22,16 @@ import numpy as np
 
 from .dataset import Annotation, Dataset, Scene, category_entry, load_dataset
 from .errors import ModelError, UsageError
+from .exemplars import ExemplarBank, build_bank, height_report
 from .filters import FilterLimits, phash
 from .generator import Generator
 from .geometry import GroundModel, fit_ground
 from .judge import judge
 from .placement import aspect_ratios
-from .plan import Job, Plan, make_plan
+from .plan import Job, Plan, derive_seed, make_plan
 from .provenance import KEY, file_sha256, image_provenance, kept_annotation_provenance, new_annotation_provenance
 from .recipe import Recipe
+from .rle import area as mask_area
 from .stages import Candidate, Draft, Failure, StageContext, stage_module
 from .surface import Surface, mask_for
 from .writer import RUN_FORMAT, RunFolder, assemble, read_chunks
@@ -46,6 +48,7 @@ class Setup:
     plan: Plan
     ratios: dict[str, np.ndarray]
     footprint_rows: tuple[float, float]
+    exemplars: dict[int, ExemplarBank] = field(default_factory=dict)
 
 
 @dataclass
@@ -72,6 +75,8 @@ class RunSummary:
     rejections: dict[str, int]
     chunks_skipped: int
     shard: tuple[int, int]
+    exemplars: dict[str, dict] = field(default_factory=dict)
+    heights: dict[str, dict] = field(default_factory=dict)
 
 
 def prepare(recipe: Recipe) -> Setup:
@@ -91,7 +96,17 @@ def prepare(recipe: Recipe) -> Setup:
     ground = fit_ground(dataset, priors=dict(recipe.height_priors) or None)
     sources = [stage_module(spec.kind).eligible(dataset, spec, limits) for spec in recipe.stages]
     plan = make_plan(recipe, sources)
-    return Setup(recipe, dataset, ground, limits, plan, aspect_ratios(dataset), footprint_rows(dataset))
+    banks = {
+        spec.index: build_bank(
+            dataset,
+            spec.target_class,
+            max_upscale=spec.options["max_upscale"],
+            order_seed=derive_seed(recipe.seed, "exemplars", spec.index),
+        )  # fmt: skip
+        for spec in recipe.stages
+        if spec.kind == "insert" and spec.options["appearance"] == "exemplar"
+    }
+    return Setup(recipe, dataset, ground, limits, plan, aspect_ratios(dataset), footprint_rows(dataset), banks)
 
 
 def footprint_rows(dataset: Dataset) -> tuple[float, float]:
@@ -167,6 +182,9 @@ def run_recipe(
 
     counts = assemble(folder.root, mine, categories=identity["categories"], info=_info(recipe, shard))
     folder.log(f"done: {counts['accepted']} accepted of {counts['attempted']} attempts")
+    banks = {bank.category: bank.summary() for bank in setup.exemplars.values()}
+    for name, summary in banks.items():
+        folder.log(f"exemplars of {name}: {json.dumps(summary)}")
     return RunSummary(
         output=folder.root,
         wanted=wanted,
@@ -176,6 +194,8 @@ def run_recipe(
         rejections=dict(state.rejections + Counter(duplicate=counts["duplicates"])),
         chunks_skipped=len(mine) - len(todo),
         shard=shard,
+        exemplars=banks,
+        heights=height_report(folder.root / "labels.json", setup.dataset, [s.target_class for s in recipe.stages]),
     )
 
 
@@ -266,6 +286,7 @@ class ChunkMaker:
             verifier=verifier,
             steps=recipe.steps,
             guidance=recipe.guidance,
+            exemplars=setup.exemplars,
         )
         self.folder = RunFolder(root)
 
@@ -366,8 +387,9 @@ class ChunkMaker:
                 {
                     "category_id": obj.category_id,
                     "bbox": [x, y, w, h],
-                    "area": w * h,
+                    "area": w * h if obj.segmentation is None else float(mask_area(obj.segmentation)),
                     "iscrowd": 0,
+                    **({} if obj.segmentation is None else {"segmentation": dict(obj.segmentation)}),
                     KEY: new_annotation_provenance(obj.requested, spec.kind, obj.extra),
                 }
             )
