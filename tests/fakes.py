@@ -75,3 +75,33 @@ def fake_context(dataset, ground, *, verifier=None, surfaces=None):
         footprint_rows=(0.0, 1e9),
         verifier=verifier,
     )
+
+
+class ShadeGenerator:
+    """A generator that takes exemplars: it returns the placed exemplar with its repainted region shaded
+    (every pixel of the mask times ``gain``, plus a smooth left-to-right ramp), as a harmonising model
+    changes light and colour but not detail. Pixels outside the mask come back unchanged."""
+
+    accepts_exemplar = True
+
+    def __init__(self, classes: Sequence[str] = ("car", "van", "bus", "tractor", "works_trailer"), *, gain=0.8):
+        self.classes = tuple(classes)
+        self.gain = gain
+        self.calls: list[int] = []
+
+    def inpaint(self, requests: Sequence[InpaintRequest], *, steps: int, guidance: float) -> list[np.ndarray]:
+        from pipeline.generator.request import check_request
+
+        self.calls.append(len(requests))
+        frames = []
+        for i, request in enumerate(requests):
+            check_request(request, i, self.classes, accepts_exemplar=True)
+            frame = request.image.copy()
+            ramp = np.linspace(-12.0, 12.0, frame.shape[1], dtype=np.float32)[None, :, None]
+            shaded = np.clip(request.exemplar.astype(np.float32) * self.gain + ramp, 0, 255).round().astype(np.uint8)
+            frame[request.mask] = shaded[request.mask]
+            frames.append(frame)
+        return frames
+
+    def info(self) -> dict:
+        return {"kind": "test-shade", "classes": list(self.classes), "window": 64}
