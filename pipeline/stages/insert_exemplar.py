@@ -139,8 +139,9 @@ def _one_object(job, spec, ctx, bank, index, scene, image, surface, boxes, taken
         if hidden > MAX_HIDDEN_SHARE:
             last = Failure("occlusion", f"nearer objects would hide {hidden:.0%} of the new object")
             continue
+        amodal = [float(v) for v in placed.box]
         if protected.any():
-            placed, region = _behind(placed, region, protected, image)
+            placed, region = _behind(placed, protected, image)
         if (region.mask & taken).any():
             last = Failure("overlap", "the new object's repainted region would cover another new object")
             continue
@@ -151,7 +152,7 @@ def _one_object(job, spec, ctx, bank, index, scene, image, surface, boxes, taken
             "hue_shift_deg": round(hue, 2),
             "target_height_px": round(height, 2),
             "expected_height_px": round(placement.expected_height, 2),
-            "amodal_bbox": [float(v) for v in placed.box],
+            "amodal_bbox": amodal,
             "hidden_share": round(hidden, 3),
         }
         return {"placed": placed, "region": region, "placement": placement, "extra": extra}
@@ -180,11 +181,13 @@ def _nearer_pixels(region: np.ndarray, box: Sequence[float], scene, image: np.nd
     return out
 
 
-def _behind(placed: Placed, region: RepaintRegion, protected: np.ndarray, image: np.ndarray):
-    """The placed exemplar and its repaint region with the nearer objects' pixels left alone."""
+def _behind(placed: Placed, protected: np.ndarray, image: np.ndarray) -> tuple[Placed, RepaintRegion]:
+    """The placed exemplar with the nearer objects' pixels left alone, and the region it then repaints
+    (the visible silhouette grown, and the shadow band of the whole object, outside those pixels)."""
     keep = ~protected
     composite = np.where(protected[..., None], image, placed.composite)
     silhouette = placed.silhouette & keep
+    region = repaint_mask(silhouette, placed.box)
     moved = replace(
         placed, composite=composite, alpha=placed.alpha * keep, silhouette=silhouette, box=_bounds(silhouette)
     )
