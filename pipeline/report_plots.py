@@ -196,7 +196,7 @@ def save_size_histograms(real: Boxes, new: Boxes, path: str | os.PathLike[str], 
         ax.legend(fontsize=7)
     for ax in axes[len(names) :]:
         ax.set_visible(False)
-    fig.suptitle("Box size per class: real vs. new (densities)", fontsize=11)
+    fig.suptitle("Box height per class: real vs. new (densities)", fontsize=11)
     _save(fig, path)
 
 

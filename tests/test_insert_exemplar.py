@@ -243,3 +243,32 @@ def test_ks_distance_and_bandwidth():
     logs = np.log([20, 30, 40, 50, 60])
     q75, q25 = np.percentile(logs, [75, 25])
     assert bandwidth == pytest.approx(0.9 * min(np.std(logs, ddof=1), (q75 - q25) / 1.34) * 5**-0.2)
+
+
+def _upscaled_run(tmp_path: Path, size: tuple[int, int], count: int, images: int):
+    from pipeline.recipe import load_recipe
+    from pipeline.runner import run_recipe
+
+    from .upscaled import upscaled_copy
+
+    dataset = upscaled_copy(SEED_SCENES / "train.json", tmp_path / "data", size, images=images)
+    recipe = write_recipe(tmp_path, count=count)
+    recipe.write_text(recipe.read_text().replace(str(SEED_SCENES / "train.json"), str(dataset)))
+    return run_recipe(load_recipe(recipe), generator=BlockGenerator(), verifier=AlwaysVerifier())
+
+
+def test_frames_of_1280x720_work(tmp_path):
+    summary = _upscaled_run(tmp_path, (1280, 720), 3, 24)
+    assert summary.accepted >= 2 and summary.exemplars["tractor"]["usable"] >= 1
+    for image, _, anns in _outputs(tmp_path / "out"):
+        assert (image["width"], image["height"]) == (1280, 720)
+        new = [a for a in anns if a["rarefill"]["synthetic"]]
+        # detail at the image's own size: an exemplar is never enlarged beyond the limit
+        assert new and all(a["rarefill"]["scale"] <= 1.5 for a in new)
+
+
+@pytest.mark.slow
+def test_frames_of_1920x1080_work(tmp_path):
+    summary = _upscaled_run(tmp_path, (1920, 1080), 16, 40)
+    assert summary.accepted >= 12
+    assert all(a["rarefill"]["scale"] <= 1.5 for _, _, anns in _outputs(tmp_path / "out") for a in anns[-1:])
