@@ -238,15 +238,19 @@ def _cut_out(image: np.ndarray, ann: Annotation, scene: Scene) -> tuple[Exemplar
 
 
 def without_thin_parts(mask: np.ndarray, box_height: float) -> np.ndarray:
-    """A GrabCut silhouette without the thin background structures it tends to keep (poles, wires, twigs
-    that touch the object): a morphological opening with a disc about 4% of the box height (3-7 px),
-    then the largest 8-connected component. Thin parts of the object itself go too, which a pasted
-    instance can spare.
+    """A GrabCut silhouette without the thin background structures it tends to keep above an object
+    (poles, wires, twigs that touch it): a morphological opening with a disc about 4% of the box height
+    (3-7 px) in the upper half of the silhouette, then the largest 8-connected component. The lower half
+    is kept as cut: wheels, axles and a trailer's chassis are thin parts of the object itself, and where
+    it meets the ground is what places it.
     """
     radius = int(np.clip(round(0.04 * box_height), 1, 3))
     kernel = cv2.getStructuringElement(cv2.MORPH_ELLIPSE, (2 * radius + 1, 2 * radius + 1))
-    opened = cv2.morphologyEx(mask.astype(np.uint8), cv2.MORPH_OPEN, kernel)
-    count, labels, stats, _ = cv2.connectedComponentsWithStats(opened, connectivity=8)
+    opened = cv2.morphologyEx(mask.astype(np.uint8), cv2.MORPH_OPEN, kernel).astype(bool)
+    rows = np.flatnonzero(mask.any(axis=1))
+    middle = (int(rows[0]) + int(rows[-1]) + 1) // 2
+    opened[middle:] = mask[middle:]
+    count, labels, stats, _ = cv2.connectedComponentsWithStats(opened.astype(np.uint8), connectivity=8)
     if count < 2:
         return np.zeros_like(mask)
     return labels == 1 + int(np.argmax(stats[1:, cv2.CC_STAT_AREA]))
