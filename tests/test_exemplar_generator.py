@@ -204,3 +204,14 @@ def test_exemplar_model_survives_a_save_load_round_trip(scenes, exemplar_model, 
     first = load(exemplar_model).inpaint([request], steps=2, guidance=1.0)[0]
     second = load(tmp_path / "copy").inpaint([request], steps=2, guidance=1.0)[0]
     assert np.array_equal(first, second)
+
+
+def test_fit_help_teaches_the_warm_start_and_the_model_kind():
+    from typer.testing import CliRunner
+
+    from pipeline.cli import app
+
+    result = CliRunner().invoke(app, ["fit", "--help"], env={"COLUMNS": "200"})
+    assert result.exit_code == 0
+    for option in ("--init", "--exemplar", "--no-exemplar", "self-supervision"):
+        assert option in result.output

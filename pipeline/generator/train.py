@@ -65,17 +65,17 @@ class TrainSettings:
     """
 
     learning_rate: float = 6e-4
-    warmup_steps: int = 100
-    ema_decay: float = 0.998
+    warmup_steps: int = 50
+    ema_decay: float = 0.995
     drop_label: float = 0.1
-    background_share: float = 0.25
+    background_share: float = 0.2
     mask_margin: tuple[float, float] = (0.06, 0.18)
     mask_weight: float = 1.0
     outside_weight: float = 0.1
     checkpoint_every: int = 200
     verifier_steps: int = 1500
     use_bf16: bool = True
-    exemplar_share: float = 0.5
+    exemplar_share: float = 0.6
 
 
 @dataclass(frozen=True)
