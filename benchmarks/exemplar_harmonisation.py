@@ -1,6 +1,7 @@
 """How well the exemplar model fits a displaced real object back into its scene, and how fast.
 
-Each held-out object is masked with the insert stage's repaint region (silhouette grown by 3 px plus the
+Each held-out object (not touching the image edge, overlapping no other box by more than 10%) is masked
+with the insert stage's repaint region (silhouette grown by 3 px plus the
 shadow band) and given an augmented copy of itself as exemplar (the training augmentation: colour,
 brightness, contrast, blur, a few per cent of shift and scale), composited over the scene whose masked
 part is filled by OpenCV's Telea inpainting (the ground without the object's own shadow, as a new place
@@ -39,7 +40,7 @@ import torch
 
 from pipeline.dataset import load_dataset
 from pipeline.generator import InpaintRequest, load
-from pipeline.generator.batches import bounding_box
+from pipeline.generator.batches import OVERLAP_LIMIT, bounding_box, overlap_share
 from pipeline.generator.exemplar import augment_exemplar
 from pipeline.generator.windows import context_window, crop_window
 from pipeline.silhouette import object_silhouette, repaint_mask
@@ -90,10 +91,11 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--model", type=Path, default=Path("models/default"))
     parser.add_argument("--data", type=Path, default=Path("seed_scenes/val.json"))
+    parser.add_argument("--images", type=Path, default=None, help="folder the file names are relative to")
     parser.add_argument("--n", type=int, default=48, help="objects to test (the first ones at least --min-px tall)")
     parser.add_argument("--min-px", type=float, default=14.0)
-    parser.add_argument("--steps", type=int, default=6)
-    parser.add_argument("--strength", type=float, default=0.6)
+    parser.add_argument("--steps", type=int, default=4)
+    parser.add_argument("--strength", type=float, default=0.5)
     parser.add_argument("--guidance", type=float, default=1.0)
     parser.add_argument("--sheet", type=Path, default=None, help="write a PNG contact sheet here")
     parser.add_argument("--sheet-rows", type=int, default=12)
@@ -102,7 +104,7 @@ def main() -> None:
     torch.set_num_threads(args.threads)
 
     generator = load(args.model)
-    data = load_dataset(args.data)
+    data = load_dataset(args.data, args.images)
     names = data.category_names()
     rng = np.random.default_rng(0)
     cases = []
@@ -114,6 +116,9 @@ def main() -> None:
                 continue
             x, y, w, h = ann.bbox
             if x < 1 or y < 1 or x + w > image.shape[1] - 1 or y + h > image.shape[0] - 1:
+                continue
+            others = np.array([a.bbox for a in scene.annotations], dtype=np.float64).reshape(-1, 4)
+            if overlap_share(ann.bbox, others) > OVERLAP_LIMIT:  # partly hidden: not an exemplar the stage uses
                 continue
             region, sil, exemplar, alpha = displaced_exemplar(image, ann.bbox, rng)
             request = InpaintRequest(

@@ -178,8 +178,10 @@ def test_exemplar_inpainting_is_seeded_batch_independent_and_only_inside_the_mas
     plain = dataclasses.replace(requests[0], exemplar=None, exemplar_alpha=None, seed=9)
     mixed = generator.inpaint([requests[0], plain, requests[1]], steps=2, guidance=1.0, strength=strength)
     alone = generator.inpaint([requests[0]], steps=2, guidance=1.0, strength=strength)[0]
-    # Batched and single runs may differ by float rounding of batched matmuls; one grey level at most.
-    assert np.abs(mixed[0].astype(int) - alone).max() <= 1
+    # Batched and single runs may differ by bf16 rounding of batched matmuls (thread-count dependent):
+    # a grey level or two on a few pixels, never a different sample.
+    diff = np.abs(mixed[0].astype(int) - alone)
+    assert diff.max() <= 2 and (diff > 0).mean() < 0.02
     assert np.array_equal(generator.inpaint([requests[0]], steps=2, guidance=1.0, strength=strength)[0], alone)
     for request, frame in zip((requests[0], plain, requests[1]), mixed, strict=True):
         assert frame.shape == request.image.shape and frame.dtype == np.uint8
@@ -188,7 +190,7 @@ def test_exemplar_inpainting_is_seeded_batch_independent_and_only_inside_the_mas
     reseeded = generator.inpaint([dataclasses.replace(requests[0], seed=70)], steps=2, guidance=1.0, strength=strength)
     assert not np.array_equal(reseeded[0], alone)
     # the plain request is what the same request gives on its own (the exemplar path does not leak into it)
-    assert np.abs(generator.inpaint([plain], steps=2, guidance=1.0)[0].astype(int) - mixed[1]).max() <= 1
+    assert np.abs(generator.inpaint([plain], steps=2, guidance=1.0)[0].astype(int) - mixed[1]).max() <= 2
 
 
 def test_exemplar_inpainting_checks_its_strength(scenes, exemplar_model):

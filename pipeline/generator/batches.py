@@ -47,15 +47,35 @@ class Batch:
     alphas: np.ndarray
 
 
+OVERLAP_LIMIT = 0.1
+"""An object whose box shares more than this part of its area with another labelled box may be partly hidden
+(or hide the other): its silhouette would hold another object's pixels, so it is not used as an exemplar."""
+
+
 def object_silhouettes(examples: Examples) -> dict[tuple[int, tuple[float, float, float, float]], np.ndarray]:
-    """:func:`pipeline.silhouette.object_silhouette` of every object, computed once before training."""
+    """:func:`pipeline.silhouette.object_silhouette` of every object that overlaps no other labelled box by
+    more than :data:`OVERLAP_LIMIT` of its area (the exemplars of training), computed once before training."""
     out = {}
     for refs in examples.objects.values():
         for ref in refs:
             key = (ref.scene, ref.box)
-            if key not in out:
+            if key not in out and overlap_share(ref.box, examples.occupied[ref.scene]) <= OVERLAP_LIMIT:
                 out[key] = object_silhouette(examples.images[ref.scene], ref.box, segmentation=ref.segmentation).mask
     return out
+
+
+def overlap_share(box, others: np.ndarray) -> float:
+    """Largest share of ``box``'s area covered by one of ``others`` (the box itself excluded)."""
+    x, y, w, h = box
+    best = 0.0
+    for ox, oy, ow, oh in others:
+        if (ox, oy, ow, oh) == tuple(box):
+            continue
+        iw = min(x + w, ox + ow) - max(x, ox)
+        ih = min(y + h, oy + oh) - max(y, oy)
+        if iw > 0 and ih > 0:
+            best = max(best, iw * ih / (w * h))
+    return best
 
 
 def make_batch(
@@ -75,7 +95,8 @@ def make_batch(
     A share ``background_share`` of the windows asks for background at a free box. The other windows hold
     a real object, masked in one of two ways:
 
-    - with an exemplar (a share ``exemplar_share`` of them): the mask is the insert stage's exemplar
+    - with an exemplar (a share ``exemplar_share`` of them, if the object has an entry in ``silhouettes``,
+      see :func:`object_silhouettes`): the mask is the insert stage's exemplar
       repaint region (:func:`pipeline.silhouette.repaint_mask` of the object's silhouette), and the
       exemplar an augmented copy of the object (:func:`.exemplar.augment_exemplar`);
     - without: the mask is the box grown by a margin drawn from ``mask_margin`` (share of its width on
@@ -106,7 +127,7 @@ def make_batch(
             ref = examples.sample_object(rng)
             scene, box, label = ref.scene, ref.box, ref.label
             if exemplar_share > 0 and rng.random() < exemplar_share:
-                silhouette = silhouettes[(ref.scene, ref.box)]
+                silhouette = silhouettes.get((ref.scene, ref.box))
         image = examples.images[scene]
         if silhouette is not None:
             mask = repaint_mask(silhouette, box).mask

@@ -30,7 +30,7 @@ from .model import FORMAT, FORMAT_VERSION, METADATA, NULL_LABEL, sampling_schedu
 from .request import InpaintRequest, check_request
 from .windows import Window, context_window, crop_window, paste_window, window_mask
 
-EXEMPLAR_STRENGTH = 0.6
+EXEMPLAR_STRENGTH = 0.5
 """Default share of the noise schedule an exemplar request is noised to before denoising (1 = pure noise)."""
 
 _REQUIRED = (
