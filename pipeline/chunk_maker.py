@@ -70,6 +70,7 @@ def stage_context(setup: Setup, generator: Generator, verifier: Any) -> StageCon
         verifier=verifier,
         steps=setup.recipe.steps,
         guidance=setup.recipe.guidance,
+        exemplars=setup.exemplars,
     )
 
 

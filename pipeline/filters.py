@@ -282,6 +282,7 @@ def check_geometry(
     focal_px: float | None = None,
     camera_height_m: float | None = None,
     image_id: int | None = None,
+    overlap_others: Sequence[Sequence[float]] | None = None,
 ) -> list[Verdict]:
     """Run the geometric filters (scale, surface, overlap, gap, objects) for one new box.
 
@@ -303,6 +304,9 @@ def check_geometry(
         Default: the model's estimate.
     image_id : int, optional
         The image's id: its own fitted horizon is used when the model has one (pitch varies per image).
+    overlap_others : (M, 4) floats, optional
+        The boxes the overlap filter compares with, when not all of ``others`` (see
+        :func:`pipeline.judge.judge`).
 
     Returns
     -------
@@ -313,7 +317,7 @@ def check_geometry(
     return [
         scale(box, category, ground, limits, image_id=image_id),
         surface(box, surface_mask, limits),
-        overlap(box, others, limits),
+        overlap(box, others if overlap_others is None else overlap_others, limits),
         gap(box, others, ground, limits, focal_px=focal, camera_height_m=camera_height_m, image_id=image_id),
         objects(len(others) + 1, limits),
     ]

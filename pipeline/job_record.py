@@ -16,6 +16,7 @@ from .filters import FilterLimits, phash
 from .plan import Job
 from .provenance import KEY, file_sha256, image_provenance, kept_annotation_provenance, new_annotation_provenance
 from .recipe import StageSpec
+from .rle import area as mask_area
 from .stages import Candidate, Failure
 
 
@@ -105,8 +106,9 @@ def output_entry(
             {
                 "category_id": obj.category_id,
                 "bbox": [x, y, w, h],
-                "area": w * h,
+                "area": w * h if obj.segmentation is None else float(mask_area(obj.segmentation)),
                 "iscrowd": 0,
+                **({} if obj.segmentation is None else {"segmentation": dict(obj.segmentation)}),
                 KEY: new_annotation_provenance(obj.requested, spec.kind, obj.extra),
             }
         )

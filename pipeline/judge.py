@@ -13,8 +13,14 @@ def judge(candidate: Candidate, ctx: StageContext) -> list[Verdict]:
     """All verdicts on one candidate; it is accepted when every one passes.
 
     For each checked new object: scale, surface, overlap, gap and objects-per-image against every other
-    labelled object. For each checked kept (real) object, only scale and surface: its placement among the
-    other real objects is real, but its new surroundings must still carry it. For each new object, whether
+    labelled object. An object composited by its exact pixels (it has a segmentation: an exemplar placed
+    behind nearer objects and in front of farther ones, whose labels the stage clipped to what stays
+    visible) is judged by its whole (amodal) placed box, and the overlap filter, which guards against two
+    labels claiming the same pixels, has nothing to compare it with; the gap filter still keeps it
+    physically apart from the others.
+
+    For each checked kept (real) object, only scale and surface: its placement among the other real
+    objects is real, but its new surroundings must still carry it. For each new object, whether
     the verifier sees the wanted class in its box; for the whole image, the blend seam around the
     generated region.
     """
@@ -34,9 +40,11 @@ def judge(candidate: Candidate, ctx: StageContext) -> list[Verdict]:
         others = [a.bbox for a in candidate.kept if not a.iscrowd] + [
             n.bbox for i, n in enumerate(candidate.new) if i != j
         ]
+        exact = obj.segmentation is not None
         verdicts += check_geometry(
-            obj.bbox, names[obj.category_id], others, ground, surface_mask, ctx.limits, image_id=image_id
-        )
+            obj.extra.get("amodal_bbox", obj.bbox), names[obj.category_id], others, ground, surface_mask,
+            ctx.limits, image_id=image_id, overlap_others=[] if exact else None,
+        )  # fmt: skip
     if ctx.verifier is not None:
         for obj in candidate.new:
             verdicts.append(present(candidate, obj.bbox, names[obj.category_id], ctx))

@@ -142,6 +142,17 @@ def _int_range(low: int, high: int) -> Callable[[Any], tuple[int, int]]:
     return check
 
 
+def _heights(value: Any) -> str | tuple[float, float]:
+    if value == "real":
+        return value
+    if not isinstance(value, list) or len(value) != 2:
+        raise _Bad(f'must be "real" or [min, max] box heights in pixels, got {value!r}')
+    low, high = (_number(4.0, 10000.0)(v) for v in value)
+    if low > high:
+        raise _Bad(f"min must not exceed max, got [{low:g}, {high:g}]")
+    return (low, high)
+
+
 _RUN_KEYS: dict[str, tuple[Callable[[Any], Any], Any]] = {
     "name": (_name, None),
     "seed": (_integer(0, 2**63 - 1), 0),
@@ -158,6 +169,12 @@ _RUN_KEYS: dict[str, tuple[Callable[[Any], Any], Any]] = {
 STAGE_OPTIONS: dict[str, dict[str, tuple[Callable[[Any], Any], Any]]] = {
     "insert": {
         "objects_per_image": (_int_range(1, 8), (1, 1)),
+        "appearance": (_one_of("exemplar", "generated"), "exemplar"),
+        "harmonise": (_boolean, True),
+        "max_upscale": (_number(1.0, 4.0), 1.5),
+        "mirror": (_number(0.0, 1.0), 0.5),
+        "hue_shift_deg": (_number(0.0, 180.0), 0.0),
+        "heights": (_heights, "real"),
         "mask_margin": (_number(0.0, 0.5), 0.12),
     },
     "rebackground": {

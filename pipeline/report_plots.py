@@ -17,6 +17,7 @@ from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 from matplotlib.ticker import FormatStrFormatter, LogLocator, NullFormatter
 
+from .exemplars import ks_distance
 from .files import write_bytes_atomic
 from .geometry import GroundModel
 
@@ -182,20 +183,12 @@ def _draw_scale(ax, real: Boxes, new: Boxes, ground: GroundModel | None, image_h
     return handles
 
 
-def box_sizes(boxes: np.ndarray) -> np.ndarray:
-    """Box size ``sqrt(w * h)`` in pixels of ``(N, 4)`` COCO boxes: the side of the square of equal area.
-
-    COCO's size buckets (small < 32^2 px area, large > 96^2) are thresholds on the same quantity squared.
-    """
-    boxes = np.asarray(boxes, dtype=np.float64).reshape(-1, 4)
-    return np.sqrt(boxes[:, 2] * boxes[:, 3])
-
-
 def save_size_histograms(real: Boxes, new: Boxes, path: str | os.PathLike[str], *, dpi: int = 90) -> None:
-    """Per class, histograms of box size ``sqrt(w h)`` (log-spaced bins): real against new instances.
+    """Per class, histograms of box height (log-spaced bins): real against new instances.
 
     Each histogram is a density (area 1) so that a few hundred real boxes and a few new ones compare by
-    shape; the legend gives the counts.
+    shape; the legend gives the counts, the title both medians and the two-sample Kolmogorov-Smirnov
+    distance (:func:`pipeline.exemplars.ks_distance`).
     """
     names = sorted(set(real) | set(new))
     columns = min(3, max(1, len(names)))
@@ -203,8 +196,8 @@ def save_size_histograms(real: Boxes, new: Boxes, path: str | os.PathLike[str], 
     fig = _new_figure(3.6 * columns, 2.7 * grid_rows, dpi)
     axes = fig.subplots(grid_rows, columns, squeeze=False).ravel()
     for ax, name in zip(axes, names, strict=False):
-        sizes_real = box_sizes(real.get(name, np.empty((0, 4))))
-        sizes_new = box_sizes(new.get(name, np.empty((0, 4))))
+        sizes_real = np.asarray(real.get(name, np.empty((0, 4))), dtype=np.float64).reshape(-1, 4)[:, 3]
+        sizes_new = np.asarray(new.get(name, np.empty((0, 4))), dtype=np.float64).reshape(-1, 4)[:, 3]
         both = np.concatenate([sizes_real, sizes_new])
         low, high = max(1.0, float(both.min()) * 0.9), float(both.max()) * 1.1
         bins = np.geomspace(low, max(high, low * 1.5), 16)
@@ -227,14 +220,18 @@ def save_size_histograms(real: Boxes, new: Boxes, path: str | os.PathLike[str], 
         ax.xaxis.set_major_locator(LogLocator(subs=(1.0, 2.0, 5.0)))
         ax.xaxis.set_major_formatter(FormatStrFormatter("%g"))
         ax.xaxis.set_minor_formatter(NullFormatter())
-        ax.set_title(name, fontsize=10)
-        ax.set_xlabel("sqrt(w h) (px)", fontsize=8)
+        title = name
+        if sizes_real.size and sizes_new.size:
+            ks = ks_distance(sizes_new, sizes_real)
+            title += f": median {np.median(sizes_real):.0f} real, {np.median(sizes_new):.0f} new px; KS {ks:.2f}"
+        ax.set_title(title, fontsize=8)
+        ax.set_xlabel("box height (px)", fontsize=8)
         ax.tick_params(labelsize=7)
         ax.set_yticks([])
         ax.legend(fontsize=7)
     for ax in axes[len(names) :]:
         ax.set_visible(False)
-    fig.suptitle("Box size per class: real vs. new (densities)", fontsize=11)
+    fig.suptitle("Box height per class: real vs. new (densities)", fontsize=11)
     _save(fig, path)
 
 

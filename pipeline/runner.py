@@ -20,11 +20,12 @@ import numpy as np
 from .chunk_maker import made_chunks, open_model
 from .dataset import Dataset, category_entry, load_dataset
 from .errors import UsageError
+from .exemplars import ExemplarBank, build_bank, height_report
 from .filters import FilterLimits
 from .generator import Generator
 from .geometry import CameraGroups, fit_cameras
 from .placement import aspect_ratios
-from .plan import Plan, make_plan
+from .plan import Plan, derive_seed, make_plan
 from .recipe import Recipe
 from .stages import stage_module
 from .tally import StageTally, read_manifest, summary_record, tally_stages
@@ -42,6 +43,7 @@ class Setup:
     plan: Plan
     ratios: dict[str, np.ndarray]
     footprint_rows: tuple[float, float]
+    exemplars: dict[int, ExemplarBank] = field(default_factory=dict)
 
 
 @dataclass
@@ -72,6 +74,8 @@ class RunSummary:
     chunks_skipped: int
     shard: tuple[int, int]
     stages: tuple[StageTally, ...] = ()
+    exemplars: dict[str, dict] = field(default_factory=dict)
+    heights: dict[str, dict] = field(default_factory=dict)
 
     @property
     def short(self) -> int:
@@ -104,7 +108,17 @@ def prepare(recipe: Recipe) -> Setup:
         for spec in recipe.stages
     ]
     plan = make_plan(recipe, sources)
-    return Setup(recipe, dataset, ground, limits, plan, aspect_ratios(dataset), footprint_rows(dataset))
+    banks = {
+        spec.index: build_bank(
+            dataset,
+            spec.target_class,
+            max_upscale=spec.options["max_upscale"],
+            order_seed=derive_seed(recipe.seed, "exemplars", spec.index),
+        )  # fmt: skip
+        for spec in recipe.stages
+        if spec.kind == "insert" and spec.options["appearance"] == "exemplar"
+    }
+    return Setup(recipe, dataset, ground, limits, plan, aspect_ratios(dataset), footprint_rows(dataset), banks)
 
 
 def footprint_rows(dataset: Dataset) -> tuple[float, float]:
@@ -196,6 +210,9 @@ def run_recipe(
     stages = tally_stages(read_manifest(folder.root), identity["stages"])
     folder.write_summary(summary_record(stages))
     folder.log(f"done: {counts['accepted']} accepted of {counts['attempted']} attempts")
+    banks = {bank.category: bank.summary() for bank in setup.exemplars.values()}
+    for name, bank_summary in banks.items():
+        folder.log(f"exemplars of {name}: {json.dumps(bank_summary)}")
     return RunSummary(
         output=folder.root,
         wanted=state.wanted,
@@ -206,6 +223,8 @@ def run_recipe(
         chunks_skipped=len(mine) - len(todo),
         shard=shard,
         stages=tuple(stages),
+        exemplars=banks,
+        heights=height_report(folder.root / "labels.json", setup.dataset, [s.target_class for s in recipe.stages]),
     )
 
 

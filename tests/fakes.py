@@ -93,3 +93,33 @@ class BoxVerifier:
 
     def present_probability(self, image, box, label) -> float:
         return self.high if int(round(box[0])) % 2 == 0 else self.low
+
+
+class ShadeGenerator:
+    """A generator that takes exemplars: it returns the placed exemplar with its repainted region shaded
+    (every pixel of the mask times ``gain``, plus a smooth left-to-right ramp), as a harmonising model
+    changes light and colour but not detail. Pixels outside the mask come back unchanged."""
+
+    accepts_exemplar = True
+
+    def __init__(self, classes: Sequence[str] = ("car", "van", "bus", "tractor", "works_trailer"), *, gain=0.8):
+        self.classes = tuple(classes)
+        self.gain = gain
+        self.calls: list[int] = []
+
+    def inpaint(self, requests: Sequence[InpaintRequest], *, steps: int, guidance: float) -> list[np.ndarray]:
+        from pipeline.generator.request import check_request
+
+        self.calls.append(len(requests))
+        frames = []
+        for i, request in enumerate(requests):
+            check_request(request, i, self.classes, accepts_exemplar=True)
+            frame = request.image.copy()
+            ramp = np.linspace(-12.0, 12.0, frame.shape[1], dtype=np.float32)[None, :, None]
+            shaded = np.clip(request.exemplar.astype(np.float32) * self.gain + ramp, 0, 255).round().astype(np.uint8)
+            frame[request.mask] = shaded[request.mask]
+            frames.append(frame)
+        return frames
+
+    def info(self) -> dict:
+        return {"kind": "test-shade", "classes": list(self.classes), "window": 64}

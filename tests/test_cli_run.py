@@ -38,7 +38,9 @@ def tiny_model(tmp_path_factory) -> Path:
 
 def _recipe(tmp_path: Path, model: Path, *, count: int = 3) -> Path:
     path = tmp_path / "recipe.toml"
-    path.write_text(RECIPE.format(dataset=SEED_SCENES / "train.json", model=model, output="out", count=count))
+    path.write_text(
+        RECIPE.format(dataset=SEED_SCENES / "train.json", model=model, output="out", count=count, options="")
+    )
     return path
 
 

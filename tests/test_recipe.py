@@ -49,7 +49,16 @@ def test_good_recipe(tmp_path):
     assert recipe.height_priors == {"tractor": 2.8}
     (stage,) = recipe.stages
     assert (stage.kind, stage.target_class, stage.count) == ("insert", "tractor", 20)
-    assert stage.options == {"objects_per_image": (1, 2), "mask_margin": 0.12}
+    assert stage.options == {
+        "objects_per_image": (1, 2),
+        "appearance": "exemplar",
+        "harmonise": True,
+        "max_upscale": 1.5,
+        "mirror": 0.5,
+        "hue_shift_deg": 0.0,
+        "heights": "real",
+        "mask_margin": 0.12,
+    }
     assert recipe.steps == 12 and recipe.attempts_per_output == 4  # defaults filled
     assert len(recipe.sha256) == 64
 
@@ -129,3 +138,27 @@ def test_shards_partition_the_chunks(tmp_path):
     assert sorted(c for s in shards for c in s) == list(range(len(plan.chunks)))
     with pytest.raises(Exception, match="0 <= i < N"):
         plan.shard(3, 3)
+
+
+@pytest.mark.parametrize(
+    ("line", "message"),
+    [
+        ('appearance = "drawn"', "must be one of 'exemplar', 'generated'"),
+        ("max_upscale = 0.5", "must be in [1, 4]"),
+        ("mirror = 1.5", "must be in [0, 1]"),
+        ("heights = [40, 20]", "min must not exceed max"),
+        ('heights = "test"', 'must be "real" or [min, max]'),
+        ("harmonise = 1", "must be true or false"),
+    ],
+)
+def test_bad_insert_options_name_their_key(tmp_path, line, message):
+    with pytest.raises(RecipeError) as info:
+        _load(tmp_path, GOOD.replace("objects_per_image = [1, 2]", "objects_per_image = [1, 2]\n" + line))
+    assert line.split(" = ")[0] in str(info.value) and message in str(info.value)
+
+
+def test_insert_height_range_is_read(tmp_path):
+    recipe = _load(
+        tmp_path, GOOD.replace("objects_per_image = [1, 2]", "objects_per_image = [1, 2]\nheights = [16, 80]")
+    )
+    assert recipe.stages[0].options["heights"] == (16.0, 80.0)

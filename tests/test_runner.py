@@ -21,7 +21,7 @@ from pipeline.recipe import load_recipe
 from pipeline.runner import prepare, run_recipe
 
 from .conftest import SEED_SCENES
-from .fakes import AlwaysVerifier, BlockGenerator
+from .fakes import AlwaysVerifier, BlockGenerator, ShadeGenerator
 
 RECIPE = """
 [run]
@@ -38,12 +38,16 @@ kind = "insert"
 class = "tractor"
 count = {count}
 objects_per_image = [1, 2]
-"""
+{options}"""
 
 
-def write_recipe(folder: Path, *, count: int = 12, output: str = "out", name: str = "recipe.toml") -> Path:
+def write_recipe(
+    folder: Path, *, count: int = 12, output: str = "out", name: str = "recipe.toml", options: str = ""
+) -> Path:
     path = folder / name
-    text = RECIPE.format(dataset=SEED_SCENES / "train.json", model=folder / "no-model", output=output, count=count)
+    text = RECIPE.format(
+        dataset=SEED_SCENES / "train.json", model=folder / "no-model", output=output, count=count, options=options
+    )
     path.write_text(text)
     return path
 
@@ -87,7 +91,10 @@ def test_run_writes_coco_labels_with_provenance(tmp_path):
         carried = [a["rarefill"]["source_annotation_id"] for a in kept]
         assert sorted(carried + hidden) == sorted(a.id for a in source.annotations)
         originals = {a.id: a for a in source.annotations}
-        assert all(a["bbox"] == list(originals[a["rarefill"]["source_annotation_id"]].bbox) for a in kept)
+        clipped = {c["annotation_id"]: c["bbox"] for c in prov["details"].get("clipped", [])}
+        for a in kept:
+            original = originals[a["rarefill"]["source_annotation_id"]]
+            assert a["bbox"] == clipped.get(original.id, list(original.bbox))
         for a in new:
             x, y, w, h = a["bbox"]
             assert x >= 0 and y >= 0 and x + w <= image["width"] and y + h <= image["height"]
@@ -104,7 +111,7 @@ def test_run_writes_coco_labels_with_provenance(tmp_path):
 
 
 def test_new_box_is_refitted_to_the_drawn_pixels(tmp_path):
-    fake_run(write_recipe(tmp_path, count=4))
+    fake_run(write_recipe(tmp_path, count=4, options='appearance = "generated"'))
     out = tmp_path / "out"
     labels = json.loads((out / "labels.json").read_text())
     for image in labels["images"]:
@@ -158,7 +165,7 @@ def test_shards_and_collect_equal_a_single_run(tmp_path):
 
 
 def test_denoising_is_batched_per_chunk(tmp_path):
-    generator = BlockGenerator()
+    generator = ShadeGenerator()
     run_recipe(load_recipe(write_recipe(tmp_path, count=8)), generator=generator, verifier=AlwaysVerifier())
     assert generator.calls[0] >= 8  # the first round of a chunk of 8 jobs is one call
 
@@ -209,7 +216,7 @@ def test_kill_9_and_rerun_gives_the_uninterrupted_result(tmp_path):
 
 
 def test_objects_hidden_by_an_insert_leave_the_labels_and_nearer_ones_are_never_painted_over(tmp_path):
-    fake_run(write_recipe(tmp_path, count=16))
+    fake_run(write_recipe(tmp_path, count=16, options='appearance = "generated"'))
     out = tmp_path / "out"
     labels = json.loads((out / "labels.json").read_text())
     source = {s.id: s for s in load_dataset(SEED_SCENES / "train.json").scenes}

@@ -212,3 +212,28 @@ def probe(
     paths = write_results(result, out)
     stdout().print(paths["markdown"].read_text(encoding="utf-8"), markup=False)
     stdout().print(f"wrote {paths['markdown']}, {paths['json']} and {paths['plot']}")
+
+
+@app.command()
+@reports_errors
+def sheet(
+    ctx: typer.Context,
+    run_dir: Annotated[Path, typer.Argument(metavar="RUN_DIR", help="A run folder written by `rarefill run`.")],
+    real: Annotated[Path, typer.Option("--real", help="A real COCO data set to compare with (e.g. a held-out split).")],
+    out: Annotated[Path, typer.Option("--out", help="PNG file to write.")],
+    real_images: Annotated[
+        Path | None, typer.Option("--real-images", help="Image folder of --real (default: images/ beside it).")
+    ] = None,
+    per_class: Annotated[int, typer.Option("--per-class", min=1, help="Inserted instances shown per class.")] = 12,
+) -> None:
+    """Write a contact sheet: inserted instances beside real ones of the same class and about the same size.
+
+    Instances are taken evenly over their box heights; each pair shares one whole-number magnification
+    (nearest neighbour), so both show their pixels as they are.
+
+    Example: rarefill sheet outputs/more-tractors --real seed_scenes/test.json --out sheet.png
+    """
+    from ..contact_sheet import write_sheet
+
+    pairs = write_sheet(run_dir, real, out, real_images=real_images, per_class=per_class)
+    stdout().print(f"wrote {out}: {pairs} pairs of inserted and real instances")

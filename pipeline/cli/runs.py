@@ -30,6 +30,14 @@ def _print_run_summary(summary) -> None:
     for tally in summary.stages:
         for line in _stage_lines(tally):
             out.print(line, markup=False, soft_wrap=True)
+    for name, bank in summary.exemplars.items():
+        left = ", ".join(f"{why} {n}" for why, n in bank["left_out"].items()) or "none left out"
+        out.print(f"exemplars of {name}: {bank['usable']} of {bank['considered']} real instances usable ({left})")
+    for name, h in summary.heights.items():
+        out.print(
+            f"box heights of {name}: new median {h['median_new']} px ({h['new']}), real median "
+            f"{h['median_real']} px ({h['real']}), Kolmogorov-Smirnov distance {h['ks']}"
+        )
     if summary.chunks_skipped:
         out.print(f"resumed: {summary.chunks_skipped} chunk(s) were already done")
     out.print(f"labels:   {summary.output / 'labels.json'}")

@@ -197,7 +197,7 @@ def _plots_html(note: str, prefix: str) -> str:
     figures = [
         ("scale.png", "", "Box height against bottom row, with the fitted ground lines; new instances as diamonds"),
         ("counts.png", "", "Instances per class before and after the run"),
-        ("sizes.png", "wide", "Box size per class, real against new"),
+        ("sizes.png", "wide", "Box height per class, real against new, with medians and Kolmogorov-Smirnov distance"),
     ]
     items = "".join(
         f'<figure class="{css}"><img src="{prefix}{ASSETS}/{name}" alt="{_esc(alt)}"></figure>'

@@ -29,8 +29,10 @@ class StageContext:
     ``surface`` returns the drivable surface of a scene (the runner caches it); ``aspect_ratios`` maps
     a class name to the width/height ratios of its real boxes; ``footprint_rows`` is the band of image
     rows where real objects stand (new ones stand there too: nearer, objects would be larger than any the
-    generator learned from; farther, too small to draw); ``verifier`` may be None. ``ground`` is the data
-    set's ground models by camera group; a stage gets a scene's own with :func:`pipeline.geometry.ground_for`.
+    generator learned from; farther, too small to draw); ``verifier`` may be None; ``exemplars`` maps a
+    stage index to its :class:`~pipeline.exemplars.ExemplarBank` (insert stages with exemplars). ``ground`` is
+    the data set's ground models by camera group; a stage gets a scene's own with
+    :func:`pipeline.geometry.ground_for`.
     """
 
     dataset: Dataset
@@ -43,16 +45,22 @@ class StageContext:
     verifier: Any = None
     steps: int = 12
     guidance: float = 1.0
+    exemplars: Mapping[int, Any] = field(default_factory=dict)
 
 
 @dataclass(frozen=True)
 class NewObject:
-    """An object a stage added. ``bbox`` is re-fitted to the generated pixels; ``requested`` was asked for."""
+    """An object a stage added.
+
+    ``bbox`` is the label: re-fitted to the generated pixels, or an exemplar's placed silhouette bounds;
+    ``requested`` was asked for; ``segmentation`` (COCO RLE dict) where the stage knows the object's pixels.
+    """
 
     category_id: int
     bbox: tuple[float, float, float, float]
     requested: tuple[float, float, float, float]
     extra: Mapping[str, Any] = field(default_factory=dict)
+    segmentation: Mapping[str, Any] | None = None
 
 
 @dataclass(frozen=True)

@@ -4,9 +4,27 @@ Options (recipe ``[[stage]]`` keys):
 
 ``objects_per_image``
     An integer or ``[min, max]``: how many new objects one output gets (drawn uniformly).
+``appearance``
+    ``"exemplar"`` (default): each new object is a real instance of the class from the training split,
+    placed at the image's own resolution and harmonised by the generator
+    (:mod:`pipeline.stages.insert_exemplar`). ``"generated"``: the generator draws the object from its
+    class label alone (this module), its label re-fitted to the drawn pixels.
+``harmonise``
+    Exemplar mode: let a generator that takes exemplars repaint the object in context (default true);
+    false pastes the exemplar with a light feather (the naive-paste control).
+``max_upscale``
+    Exemplar mode: largest enlargement of an exemplar (default 1.5).
+``mirror``
+    Exemplar mode: probability of mirroring an exemplar left-right (default 0.5).
+``hue_shift_deg``
+    Exemplar mode: hue rotation inside the silhouette, drawn uniformly in ``[-v, v]`` (default 0: off).
+``heights``
+    Exemplar mode: ``"real"`` (default) draws each target box height from the class's real box heights;
+    ``[min, max]`` draws it log-uniformly in that range (pixels).
 ``mask_margin``
-    How far the inpainting mask reaches beyond the sampled box, as a share of its width (sides) and
-    height (top); the generator needs room to draw the object's outline and its contact with the ground.
+    Generated mode: how far the inpainting mask reaches beyond the sampled box, as a share of its width
+    (sides) and height (top); the generator needs room to draw the object's outline and its contact with
+    the ground.
 """
 
 from __future__ import annotations
@@ -25,6 +43,7 @@ from ..plan import Job, derive_seed
 from ..recipe import StageSpec
 from ..refit import refit_box
 from ..surface import Surface
+from . import insert_exemplar
 from .base import Candidate, Draft, Failure, NewObject, StageContext
 
 OCCLUSION_TRIES = 8
@@ -78,6 +97,8 @@ def draft(job: Job, attempt: int, spec: StageSpec, ctx: StageContext) -> Draft |
     rng = np.random.default_rng(job.attempt_seed(attempt))
     low, high = spec.options["objects_per_image"]
     wanted = int(rng.integers(low, high + 1))
+    if spec.options["appearance"] == "exemplar":
+        return insert_exemplar.draft(job, attempt, spec, ctx, wanted, low)
 
     # 2. place the objects one after another, each apart from all earlier ones, where real objects stand
     surface = within_rows(ctx.surface(scene), ctx.footprint_rows)
@@ -124,6 +145,8 @@ def _nearer_covered(mask: np.ndarray, box: Sequence[float], annotations):
 
 def complete(draft_: Draft, frames: Sequence[np.ndarray], ctx: StageContext) -> Candidate | Failure:
     """Compose the generated windows and re-fit each label to the object actually drawn."""
+    if draft_.state.get("mode") == "exemplar":
+        return insert_exemplar.complete(draft_, frames, ctx)
     # 4. assemble the result: each frame changed only pixels inside its own (disjoint) mask
     out = draft_.image.copy()
     changed = np.zeros(out.shape[:2], dtype=bool)

@@ -1,0 +1,274 @@
+"""Exemplar insertion: real instances placed at the ground model's scale, exact labels, untouched surroundings."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+import pytest
+from PIL import Image
+from pycocotools import mask as mask_utils
+
+from pipeline.compose import keep_detail, low_pass, place_exemplar
+from pipeline.dataset import Annotation, load_dataset
+from pipeline.exemplars import Exemplar, ExemplarBank, build_bank, height_targets, ks_distance
+from pipeline.geometry import fit_ground
+from pipeline.silhouette import object_silhouette, repaint_mask
+from pipeline.stages.insert_exemplar import MIN_VISIBLE_SHARE, hide_behind
+
+from .conftest import SEED_SCENES
+from .fakes import AlwaysVerifier, BlockGenerator, ShadeGenerator
+from .test_runner import folder_bytes, write_recipe
+
+
+def _run(tmp_path: Path, generator, *, count: int = 16, options: str = "", out: str = "out"):
+    from pipeline.recipe import load_recipe
+    from pipeline.runner import run_recipe
+
+    recipe = load_recipe(write_recipe(tmp_path, count=count, options=options, output=out))
+    return run_recipe(recipe, generator=generator, verifier=AlwaysVerifier())
+
+
+def _outputs(root: Path):
+    labels = json.loads((root / "labels.json").read_text())
+    for image in labels["images"]:
+        pixels = np.asarray(Image.open(root / "images" / image["file_name"]).convert("RGB"))
+        anns = [a for a in labels["annotations"] if a["image_id"] == image["id"]]
+        yield image, pixels, anns
+
+
+@pytest.fixture(scope="module")
+def train():
+    return load_dataset(SEED_SCENES / "train.json")
+
+
+@pytest.fixture(scope="module", params=["paste", "harmonise"])
+def made(request, tmp_path_factory, train):
+    tmp = tmp_path_factory.mktemp(request.param)
+    generator = BlockGenerator() if request.param == "paste" else ShadeGenerator()
+    summary = _run(tmp, generator)
+    return request.param, tmp / "out", summary
+
+
+def test_only_the_object_and_its_shadow_band_change(made, train):
+    mode, root, summary = made
+    scenes = {s.id: s for s in train.scenes}
+    assert summary.accepted >= 8
+    for image, pixels, anns in _outputs(root):
+        source = scenes[image["rarefill"]["source"]["image_id"]].load_rgb()
+        allowed = np.zeros(source.shape[:2], dtype=bool)
+        for a in anns:
+            if a["rarefill"]["synthetic"]:
+                silhouette = mask_utils.decode({**a["segmentation"], "counts": a["segmentation"]["counts"].encode()})
+                allowed |= repaint_mask(silhouette.astype(bool), a["rarefill"]["amodal_bbox"]).mask
+        changed = (pixels != source).any(axis=2)
+        assert changed.any()
+        assert not (changed & ~allowed).any(), f"{mode}: pixels outside silhouette and band changed"
+
+
+def test_box_is_the_silhouette_bounds_and_the_segmentation_decodes_with_pycocotools(made):
+    _, root, _ = made
+    for image, _, anns in _outputs(root):
+        for a in (a for a in anns if a["rarefill"]["synthetic"]):
+            rle = {**a["segmentation"], "counts": a["segmentation"]["counts"].encode()}
+            # pycocotools (the COCO reference code) gives the box and area of the encoded mask
+            assert list(mask_utils.toBbox(rle)) == a["bbox"]
+            assert mask_utils.area(rle) == a["area"]
+            assert rle["size"] == [image["height"], image["width"]]
+
+
+def test_exemplars_come_from_the_training_split_and_the_upscale_limit_holds(made, train):
+    _, root, _ = made
+    test_files = {s.file_name for s in load_dataset(SEED_SCENES / "test.json").scenes}
+    by_id = {s.id: s for s in train.scenes}
+    for _, _, anns in _outputs(root):
+        for a in (a for a in anns if a["rarefill"]["synthetic"]):
+            source = a["rarefill"]["exemplar"]
+            scene = by_id[source["image_id"]]
+            assert scene.file_name == source["file_name"] and scene.file_name not in test_files
+            real = next(r for r in scene.annotations if r.id == source["annotation_id"])
+            assert train.category_names()[real.category_id] == "tractor"
+            assert a["rarefill"]["scale"] <= 1.5 + 1e-9
+
+
+def test_placed_height_follows_the_ground_model_at_its_row(made, train):
+    _, root, _ = made
+    ground = fit_ground(train)
+    for image, _, anns in _outputs(root):
+        for a in (a for a in anns if a["rarefill"]["synthetic"]):
+            x, y, w, h = a["rarefill"]["amodal_bbox"]
+            expected = ground.expected_height("tractor", y + h, image_id=image["rarefill"]["source"]["image_id"])
+            # Hoiem, Efros, Hebert, "Putting Objects in Perspective", CVPR 2006: h = r (v_b - v_h)
+            assert abs(h / expected.expected - 1) <= 0.05 or abs(h - expected.expected) <= 1.0
+
+
+def test_same_seed_same_bytes(tmp_path):
+    from pipeline.recipe import load_recipe
+    from pipeline.runner import run_recipe
+
+    recipe = load_recipe(write_recipe(tmp_path, count=8))
+    for out in ("a", "b"):
+        run_recipe(recipe.with_output(tmp_path / out), generator=ShadeGenerator(), verifier=AlwaysVerifier())
+    assert folder_bytes(tmp_path / "a") == folder_bytes(tmp_path / "b")
+
+
+def test_accepted_heights_follow_the_real_ones(tmp_path, train):
+    summary = _run(tmp_path, BlockGenerator(), count=48)
+    report = summary.heights["tractor"]
+    assert report["new"] >= 30 and report["ks"] <= 0.2
+    assert summary.exemplars["tractor"]["usable"] >= 5
+    assert summary.accepted / summary.attempted >= 0.5
+
+
+def _exemplar(pixels: np.ndarray, alpha: np.ndarray) -> Exemplar:
+    rows, cols = np.nonzero(alpha)
+    bounds = (int(cols.min()), int(rows.min()), int(cols.max()) + 1, int(rows.max()) + 1)
+    return Exemplar(1, 1, "x.png", pixels, alpha.astype(np.float32), bounds, "segmentation")
+
+
+def test_a_mirrored_exemplar_is_mirrored():
+    rng = np.random.default_rng(0)
+    pixels = rng.integers(0, 256, size=(20, 12, 3), dtype=np.uint8)
+    alpha = np.ones((20, 12), dtype=np.float32)
+    scene = np.zeros((60, 80, 3), np.uint8)
+    kwargs = {"bottom_row": 50, "centre_col": 40.0, "height_px": 20.0}
+    straight = place_exemplar(scene, _exemplar(pixels, alpha), **kwargs)
+    mirrored = place_exemplar(scene, _exemplar(pixels, alpha), mirror=True, **kwargs)
+    assert straight.box == mirrored.box == (34.0, 30.0, 12.0, 20.0)
+    assert np.array_equal(straight.composite[30:50, 34:46], pixels)
+    assert np.array_equal(mirrored.composite[30:50, 34:46], pixels[:, ::-1])
+
+
+def test_placed_exemplar_has_the_wanted_height_and_keeps_the_scene_elsewhere():
+    rng = np.random.default_rng(1)
+    pixels = rng.integers(0, 256, size=(44, 30, 3), dtype=np.uint8)
+    alpha = np.zeros((44, 30), np.float32)
+    alpha[2:42, 2:28] = 1
+    scene = rng.integers(0, 256, size=(120, 160, 3), dtype=np.uint8)
+    for height in (16.0, 40.0, 60.0):
+        placed = place_exemplar(scene, _exemplar(pixels, alpha), bottom_row=100, centre_col=80.0, height_px=height)
+        x, y, w, h = placed.box
+        assert y + h == 100 and abs(h - height) <= 1
+        untouched = placed.alpha == 0
+        assert np.array_equal(placed.composite[untouched], scene[untouched])
+
+
+def test_bank_picks_only_exemplars_within_the_upscale_limit():
+    small = _exemplar(np.zeros((20, 10, 3), np.uint8), np.ones((20, 10)))
+    big = _exemplar(np.zeros((50, 30, 3), np.uint8), np.ones((50, 30)))
+    bank = ExemplarBank("tractor", (small, big), 2, {}, 1.5)
+    assert bank.usable_for(30) == [0, 1] and bank.usable_for(31) == [1] and bank.pick(76, 0) is None
+    assert {id(bank.pick(25, slot)) for slot in range(4)} == {id(small), id(big)}  # round-robin
+
+
+def test_bank_leaves_out_truncated_and_hidden_instances(train):
+    bank = build_bank(train, "tractor")
+    assert bank.considered == 20 and len(bank.exemplars) + sum(bank.left_out.values()) == 20
+    truth = {(s.id, a.id): a.extra["render_truth"]["visible_fraction"] for s in train.scenes for a in s.annotations}
+    # the demo renderer's own visibility (not available to the bank) confirms the usable ones are whole
+    assert all(truth[(e.image_id, e.annotation_id)] >= 0.9 for e in bank.exemplars)
+    assert build_bank(train, "tractor").exemplars[0].annotation_id == bank.exemplars[0].annotation_id
+
+
+def test_farther_object_under_a_new_one_is_clipped_or_dropped():
+    shape = (100, 200)
+    far = Annotation(5, 1, 1, (40.0, 20.0, 60.0, 30.0), 1800.0)
+    new = np.zeros(shape, bool)
+    new[10:70, 70:130] = True  # covers the right half of the farther box, standing nearer (bottom row 70)
+    kept, dropped, clipped = hide_behind([far], [(new, 70.0)], shape)
+    assert not dropped and kept[0].bbox == (40.0, 20.0, 30.0, 30.0)
+    assert clipped[0]["annotation_id"] == 5 and clipped[0]["bbox_before"] == [40.0, 20.0, 60.0, 30.0]
+    whole = np.zeros(shape, bool)
+    whole[10:70, 30:110] = True
+    kept, dropped, _ = hide_behind([far], [(whole, 70.0)], shape)
+    assert not kept and dropped[0][0].id == 5
+    # a nearer object (bottom below the new one's) is never clipped
+    near = Annotation(6, 1, 1, (40.0, 40.0, 60.0, 40.0), 2400.0)
+    kept, dropped, clipped = hide_behind([near], [(whole, 70.0)], shape)
+    assert kept == [near] and not dropped and not clipped
+    assert 0 < MIN_VISIBLE_SHARE < 0.5
+
+
+def test_new_objects_stand_behind_nearer_ones_without_painting_them(made, train):
+    _, root, _ = made
+    scenes = {s.id: s for s in train.scenes}
+    checked = 0
+    for image, pixels, anns in _outputs(root):
+        scene = scenes[image["rarefill"]["source"]["image_id"]]
+        source = scene.load_rgb()
+        for a in (a for a in anns if a["rarefill"]["synthetic"]):
+            x, y, w, h = a["rarefill"]["amodal_bbox"]
+            for real in scene.annotations:
+                if real.bottom_row > y + h and real.bbox[0] < x + w and x < real.bbox[0] + real.bbox[2]:
+                    own = object_silhouette(source, real.bbox).mask
+                    assert np.array_equal(pixels[own], source[own])
+                    checked += 1
+    assert checked >= 1
+
+
+def test_detail_is_the_exemplars_and_shading_the_generators():
+    rng = np.random.default_rng(3)
+    scene = rng.integers(60, 200, size=(96, 96, 3), dtype=np.uint8)
+    pixels = rng.integers(40, 216, size=(40, 30, 3), dtype=np.uint8)  # no clipping when shaded
+    placed = place_exemplar(scene, _exemplar(pixels, np.ones((40, 30))), bottom_row=80, centre_col=48.0, height_px=40)
+    region = repaint_mask(placed.silhouette, placed.box).mask
+    generated = scene.copy()
+    generated[region] = np.clip(placed.composite[region].astype(int) - 30, 0, 255)  # darker, same detail
+    out = keep_detail(scene, generated, placed, region, levels=2)
+    assert np.array_equal(out[~region], scene[~region])
+    inner = placed.silhouette
+    high_out = out.astype(np.float32) - low_pass(out, 2)
+    high_exemplar = placed.composite.astype(np.float32) - low_pass(placed.composite, 2)
+    core = np.zeros_like(region)
+    core[48:72, 40:56] = True  # well inside the silhouette, away from its edge
+    assert np.abs(high_out[core & inner] - high_exemplar[core & inner]).mean() < 3.0
+    assert abs(float(out[core].mean()) - float(placed.composite[core].mean()) + 30) < 3.0
+
+
+def test_laplacian_split_adds_back_to_the_image():
+    # Burt and Adelson 1983: the image is its low-pass plus the Laplacian levels above it
+    image = np.random.default_rng(4).integers(0, 256, size=(37, 53, 3)).astype(np.float32)
+    assert np.allclose(low_pass(image, 3) + (image - low_pass(image, 3)), image)
+    assert low_pass(image, 3).std() < image.std() / 2
+
+
+def test_ks_distance_and_bandwidth():
+    # Smirnov (1948): the two-sample statistic is the largest gap between the empirical CDFs
+    assert ks_distance([1, 2, 3], [4, 5, 6]) == 1.0
+    assert ks_distance([1, 2, 3, 4], [3, 4, 5, 6]) == 0.5
+    assert ks_distance([1, 2, 3], [1, 2, 3]) == 0.0
+    heights, bandwidth = height_targets([20, 30, 40, 50, 60])
+    # Silverman's rule of thumb: 0.9 min(sd, IQR / 1.34) n^(-1/5) on the log heights (from memory)
+    logs = np.log([20, 30, 40, 50, 60])
+    q75, q25 = np.percentile(logs, [75, 25])
+    assert bandwidth == pytest.approx(0.9 * min(np.std(logs, ddof=1), (q75 - q25) / 1.34) * 5**-0.2)
+
+
+def _upscaled_run(tmp_path: Path, size: tuple[int, int], count: int, images: int):
+    from pipeline.recipe import load_recipe
+    from pipeline.runner import run_recipe
+
+    from .upscaled import upscaled_copy
+
+    dataset = upscaled_copy(SEED_SCENES / "train.json", tmp_path / "data", size, images=images)
+    recipe = write_recipe(tmp_path, count=count)
+    recipe.write_text(recipe.read_text().replace(str(SEED_SCENES / "train.json"), str(dataset)))
+    return run_recipe(load_recipe(recipe), generator=BlockGenerator(), verifier=AlwaysVerifier())
+
+
+def test_frames_of_1280x720_work(tmp_path):
+    summary = _upscaled_run(tmp_path, (1280, 720), 3, 24)
+    assert summary.accepted >= 2 and summary.exemplars["tractor"]["usable"] >= 1
+    for image, _, anns in _outputs(tmp_path / "out"):
+        assert (image["width"], image["height"]) == (1280, 720)
+        new = [a for a in anns if a["rarefill"]["synthetic"]]
+        # detail at the image's own size: an exemplar is never enlarged beyond the limit
+        assert new and all(a["rarefill"]["scale"] <= 1.5 for a in new)
+
+
+@pytest.mark.slow
+def test_frames_of_1920x1080_work(tmp_path):
+    summary = _upscaled_run(tmp_path, (1920, 1080), 16, 40)
+    assert summary.accepted >= 12
+    assert all(a["rarefill"]["scale"] <= 1.5 for _, _, anns in _outputs(tmp_path / "out") for a in anns[-1:])
