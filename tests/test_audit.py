@@ -11,6 +11,7 @@ from __future__ import annotations
 import json
 import shutil
 from pathlib import Path
+from urllib.parse import unquote
 
 import cv2
 import numpy as np
@@ -27,6 +28,7 @@ from pipeline.cli import app
 from pipeline.dataset import load_dataset, parse_dataset
 from pipeline.errors import DatasetError, RunError
 from pipeline.provenance import file_sha256
+from pipeline.report import write_report
 
 from .conftest import SEED_SCENES
 
@@ -281,6 +283,12 @@ def test_audit_of_copied_training_tractors(tmp_path):
     shown = tractor["examples"]["most_real"] + tractor["examples"]["least_real"]
     assert shown and all((run / e["crop"]).is_file() and (run / e["neighbour"]).is_file() for e in shown)
     assert read_audit(run) == json.loads(json.dumps(result))
+    page = write_report(run).path.read_text()
+    section = page[page.index('<section id="audit">') :]
+    section = section[: section.index("</section>")]
+    assert '<tr data-class="tractor">' in section and "test.json" in section
+    sources = [part.split('"')[0] for part in section.split('src="')[1:]]
+    assert len(sources) == 2 * len(shown) and all((run / unquote(src)).is_file() for src in sources)
 
 
 def test_cli_audit_prints_the_table_and_refuses_bad_input(tmp_path):
