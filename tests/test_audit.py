@@ -26,7 +26,7 @@ from pipeline.audit.sharpness import compare_sharpness, edge_strength, silhouett
 from pipeline.audit.two_sample import binomial_tail, two_sample_test, wilson_interval
 from pipeline.cli import app
 from pipeline.dataset import load_dataset, parse_dataset
-from pipeline.errors import DatasetError, RunError
+from pipeline.errors import DatasetError, RunError, UsageError
 from pipeline.provenance import file_sha256
 from pipeline.report import write_report
 
@@ -308,3 +308,15 @@ def test_cli_audit_prints_the_table_and_refuses_bad_input(tmp_path):
     assert leak.exit_code == 2 and "not held out" in leak.stderr
     missing = cli.invoke(app, ["audit", str(tmp_path / "nowhere"), "--real", str(SEED_SCENES / "test.json")])
     assert missing.exit_code == 1 and "not a finished rarefill run folder" in missing.stderr
+
+
+def test_audit_refuses_bad_options_and_a_missing_training_split(tmp_path):
+    run = _fake_run(tmp_path / "run")
+    with pytest.raises(UsageError, match="folds >= 2"):
+        audit_run(run, SEED_SCENES / "test.json", folds=1)
+    lonely = tmp_path / "alone" / "test.json"  # no training split beside it
+    lonely.parent.mkdir()
+    shutil.copy(SEED_SCENES / "test.json", lonely)
+    with pytest.raises(UsageError, match="holds the run's source images") as caught:
+        audit_run(run, lonely, images=SEED_SCENES / "images")
+    assert "--train" in caught.value.hint
