@@ -42,7 +42,12 @@ def _fake_run(folder: Path) -> None:
         record = {"synthetic": True, "stage": {"kind": "insert"}, "source": source}
         images.append({k: image[k] for k in ("id", "file_name", "width", "height")} | {"rarefill": record})
         manifest.append(
-            {"job": str(image["id"]), "accepted": True, "verdicts": [], "file_name": f"images/{image['file_name']}"}
+            {
+                "job": f"s0-{image['id']:06d}",
+                "accepted": True,
+                "verdicts": [],
+                "file_name": f"images/{image['file_name']}",
+            }
         )
     annotations = [
         {k: a[k] for k in ("id", "image_id", "category_id", "bbox", "area")}

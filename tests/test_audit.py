@@ -231,7 +231,9 @@ def _fake_run(folder: Path, *, split: str = "train", blur: float = 0.0) -> Path:
             "model": {"name": "test"},
         }
         images.append({**{k: image[k] for k in ("id", "width", "height")}, "file_name": name, "rarefill": record})
-        manifest.append({"job": f"j{image['id']}", "accepted": True, "verdicts": [], "file_name": f"images/{name}"})
+        manifest.append(
+            {"job": f"s0-{image['id']:06d}", "accepted": True, "verdicts": [], "file_name": f"images/{name}"}
+        )
     for a in source["annotations"]:
         if a["image_id"] in keep:
             mark = {"synthetic": a["category_id"] == tractor}
@@ -307,7 +309,7 @@ def test_cli_audit_prints_the_table_and_refuses_bad_input(tmp_path):
     leak = cli.invoke(app, ["audit", str(run), "--real", str(SEED_SCENES / "train.json")])
     assert leak.exit_code == 2 and "not held out" in leak.stderr
     missing = cli.invoke(app, ["audit", str(tmp_path / "nowhere"), "--real", str(SEED_SCENES / "test.json")])
-    assert missing.exit_code == 1 and "not a finished rarefill run folder" in missing.stderr
+    assert missing.exit_code == 2 and "not a finished rarefill run folder" in missing.stderr  # bad input
 
 
 def test_audit_refuses_bad_options_and_a_missing_training_split(tmp_path):
