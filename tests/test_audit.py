@@ -11,6 +11,7 @@ from __future__ import annotations
 import json
 import shutil
 from pathlib import Path
+from urllib.parse import unquote
 
 import cv2
 import numpy as np
@@ -25,8 +26,9 @@ from pipeline.audit.sharpness import compare_sharpness, edge_strength, silhouett
 from pipeline.audit.two_sample import binomial_tail, two_sample_test, wilson_interval
 from pipeline.cli import app
 from pipeline.dataset import load_dataset, parse_dataset
-from pipeline.errors import DatasetError, RunError
+from pipeline.errors import DatasetError, RunError, UsageError
 from pipeline.provenance import file_sha256
+from pipeline.report import write_report
 
 from .conftest import SEED_SCENES
 
@@ -229,7 +231,9 @@ def _fake_run(folder: Path, *, split: str = "train", blur: float = 0.0) -> Path:
             "model": {"name": "test"},
         }
         images.append({**{k: image[k] for k in ("id", "width", "height")}, "file_name": name, "rarefill": record})
-        manifest.append({"job": f"j{image['id']}", "accepted": True, "verdicts": [], "file_name": f"images/{name}"})
+        manifest.append(
+            {"job": f"s0-{image['id']:06d}", "accepted": True, "verdicts": [], "file_name": f"images/{name}"}
+        )
     for a in source["annotations"]:
         if a["image_id"] in keep:
             mark = {"synthetic": a["category_id"] == tractor}
@@ -281,6 +285,12 @@ def test_audit_of_copied_training_tractors(tmp_path):
     shown = tractor["examples"]["most_real"] + tractor["examples"]["least_real"]
     assert shown and all((run / e["crop"]).is_file() and (run / e["neighbour"]).is_file() for e in shown)
     assert read_audit(run) == json.loads(json.dumps(result))
+    page = write_report(run).path.read_text()
+    section = page[page.index('<section id="audit">') :]
+    section = section[: section.index("</section>")]
+    assert '<tr data-class="tractor">' in section and "test.json" in section
+    sources = [part.split('"')[0] for part in section.split('src="')[1:]]
+    assert len(sources) == 2 * len(shown) and all((run / unquote(src)).is_file() for src in sources)
 
 
 def test_cli_audit_prints_the_table_and_refuses_bad_input(tmp_path):
@@ -300,3 +310,15 @@ def test_cli_audit_prints_the_table_and_refuses_bad_input(tmp_path):
     assert leak.exit_code == 2 and "not held out" in leak.stderr
     missing = cli.invoke(app, ["audit", str(tmp_path / "nowhere"), "--real", str(SEED_SCENES / "test.json")])
     assert missing.exit_code == 2 and "not a finished rarefill run folder" in missing.stderr  # bad input
+
+
+def test_audit_refuses_bad_options_and_a_missing_training_split(tmp_path):
+    run = _fake_run(tmp_path / "run")
+    with pytest.raises(UsageError, match="folds >= 2"):
+        audit_run(run, SEED_SCENES / "test.json", folds=1)
+    lonely = tmp_path / "alone" / "test.json"  # no training split beside it
+    lonely.parent.mkdir()
+    shutil.copy(SEED_SCENES / "test.json", lonely)
+    with pytest.raises(UsageError, match="holds the run's source images") as caught:
+        audit_run(run, lonely, images=SEED_SCENES / "images")
+    assert "--train" in caught.value.hint
