@@ -353,6 +353,34 @@ def test_crop_box_pads_at_the_border():
     assert (crop_box(image, (0, 0, 4, 4), size=8, margin=0.5) == 9).all()
 
 
+def test_loading_the_shipped_model_prints_nothing(capfd):
+    import logging
+    import warnings
+
+    folder = REPO / "models" / "default"
+    if not (folder / "rarefill_model.json").is_file():
+        pytest.skip("the shipped model folder models/default is not present")
+    # diffusers logs through its own handler, made on whatever stderr was when it was imported (under
+    # pytest, a capture that capfd does not see): so listen on its logger as well as on the descriptors.
+    records: list[logging.LogRecord] = []
+    listener = logging.Handler(logging.INFO)
+    listener.emit = records.append
+    logger = logging.getLogger("diffusers")
+    logger.addHandler(listener)
+    capfd.readouterr()
+    try:
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            generator = load(folder)
+            load_verifier(folder)
+    finally:
+        logger.removeHandler(listener)
+    assert generator.classes
+    assert [r.getMessage() for r in records if r.levelno >= logging.WARNING] == []
+    assert [str(w.message) for w in caught] == []
+    assert capfd.readouterr() == ("", "")
+
+
 # --------------------------------------------------------------------------------------------------
 # bring your own diffusers inpainting pipeline
 

@@ -10,6 +10,7 @@ from collections.abc import Sequence
 from dataclasses import asdict, dataclass
 
 from diffusers import DDPMScheduler, DPMSolverMultistepScheduler, UNet2DModel
+from diffusers.utils import is_accelerate_available
 
 from .request import BACKGROUND
 
@@ -25,6 +26,17 @@ NULL_LABEL = 0
 """Class-embedding index of the dropped condition (classifier-free guidance)."""
 
 IN_CHANNELS = 7
+
+
+def model_loading_options() -> dict[str, bool]:
+    """Keyword arguments for loading a diffusers model or pipeline here: local files, the usual path.
+
+    diffusers asks for its low-memory loading path by default, which needs the ``accelerate`` package;
+    without it diffusers falls back to the usual path anyway and logs a multi-line advice to install it
+    on every load, which a user of a 4.5 MB model cannot act on. So the low-memory path is asked for only
+    when it can be taken.
+    """
+    return {"local_files_only": True, "low_cpu_mem_usage": is_accelerate_available()}
 
 
 @dataclass(frozen=True)
