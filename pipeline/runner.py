@@ -31,7 +31,7 @@ from .plan import Job, Plan, make_plan
 from .provenance import KEY, file_sha256, image_provenance, kept_annotation_provenance, new_annotation_provenance
 from .recipe import Recipe
 from .stages import Candidate, Draft, Failure, StageContext, stage_module
-from .surface import Surface, mask_for
+from .surface import Surface, mask_for, warn_missing_masks
 from .writer import RUN_FORMAT, RunFolder, assemble, read_chunks
 
 
@@ -77,6 +77,7 @@ class RunSummary:
 def prepare(recipe: Recipe) -> Setup:
     """Load the data set, fit the ground model, decide eligible sources and build the plan."""
     dataset = load_dataset(recipe.dataset, recipe.images)
+    warn_missing_masks(dataset)
     names = set(dataset.category_names().values())
     for spec in recipe.stages:
         if spec.target_class not in names:
