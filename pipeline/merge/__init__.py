@@ -17,9 +17,11 @@ How the merge works, in the order :func:`merge` does it, one module per step:
 3. *Selection* (:mod:`.selection`), deterministic by seed, see :func:`select_synthetic`. Every real image
    is always kept. What was reached, and what was not, is summed up in :mod:`.summary`.
 4. *Output* (:mod:`.output`). Image and annotation ids are renumbered 1..n (real first, then synthetic,
-   each in input order). ``file_name`` is relative to the output JSON's folder: the original files
-   (``relative``), or copies / hard links in ``<stem>_images/`` beside it. Top-level ``info`` records the
-   parameters and the inputs' hashes but no clock time, so equal inputs give byte-identical output.
+   each in input order). ``file_name`` is relative to the folder rarefill's loader reads the output's
+   images from (``images/`` beside it if that exists, else its own folder), so the output loads back:
+   hard links (``link``, the default) or copies in ``<stem>_images/`` there, or the original files
+   (``relative``; a warning if that needs ``../``). Top-level ``info`` records the parameters and the
+   inputs' hashes but no clock time, so equal inputs give byte-identical output.
 """
 
 from .guard import GuardIndex, guard_index, refuse_real_leaks, synthetic_source

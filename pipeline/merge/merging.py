@@ -32,7 +32,7 @@ def merge(
     caps: Mapping[str, int] | None = None,
     rare_below: int = 50,
     mapping: str | os.PathLike[str] | None = None,
-    images_mode: str = "relative",
+    images_mode: str = "link",
     seed: int = 0,
 ) -> MergeSummary:
     """Merge a real training split with synthetic run folders into one COCO file.
@@ -61,7 +61,9 @@ def merge(
         A class is rare when the real split has fewer instances of it than this.
     mapping : path, optional
         Category mapping file (see :func:`load_mapping`).
-    images_mode : {"relative", "copy", "link"}
+    images_mode : {"link", "copy", "relative"}
+        Hard links or copies of the images in ``<out stem>_images/``, or names of the original files
+        (see :func:`.output.place_images`). The default, ``link``, costs no space and always loads back.
     seed : int
         Seeds the selection; recorded in the output's ``info``.
 

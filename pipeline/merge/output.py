@@ -8,30 +8,38 @@ from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
-from ..dataset import Dataset, Scene, annotation_entry, image_entry
+from ..dataset import Dataset, Scene, annotation_entry, default_images_dir, image_entry
 from ..errors import DatasetWarning, RunError
 from ..files import write_bytes_atomic
 from ..provenance import KEY, file_sha256
 from .summary import MergeSummary
 
 IMAGES_MODES = ("relative", "copy", "link")
-"""How merged images are referenced: the original files, copies, or hard links beside the output."""
+"""How merged images are referenced: hard links (the default) or copies beside the output, or the original
+files."""
 
 
 def place_images(
     real: Dataset, picked: Sequence[tuple[int, Scene]], out: Path, images_mode: str
 ) -> dict[tuple[int, int], str]:
-    """file_name of each merged image, keyed by (set, image id) with set -1 for the real split."""
-    base = out.resolve().parent
+    """file_name of each merged image, keyed by (set, image id) with set -1 for the real split.
+
+    Names are relative to the folder rarefill's loader will read the output's images from
+    (:func:`pipeline.dataset.default_images_dir`), so that the merged file loads back as it is. ``link``
+    and ``copy`` put the files in ``<out stem>_images/{real,synthetic-K}/`` there; ``relative`` names the
+    original files, with one :class:`DatasetWarning` if some lie outside that folder (``../``: the loader
+    refuses those, most trainers accept them).
+    """
+    root = default_images_dir(out).resolve()
     items = [((-1, s.id), s, f"real/{s.file_name}") for s in real.scenes]
     items += [((k, s.id), s, f"synthetic-{k + 1}/{s.file_name}") for k, s in picked]
     names: dict[tuple[int, int], str] = {}
     folder = f"{out.stem}_images"
     for key, scene, target in items:
         if images_mode == "relative":
-            names[key] = Path(os.path.relpath(scene.path, base)).as_posix()
+            names[key] = Path(os.path.relpath(scene.path, root)).as_posix()
             continue
-        destination = base / folder / target
+        destination = root / folder / target
         if images_mode == "copy":
             write_bytes_atomic(destination, scene.path.read_bytes())
         else:
@@ -41,9 +49,9 @@ def place_images(
     if outside:
         warnings.warn(
             DatasetWarning(
-                f"{outside} file_name(s) climb out of the output folder {base} (../); pycocotools and most "
+                f"{outside} file_name(s) climb out of the image folder {root} (../); pycocotools and most "
                 "trainers accept that, rarefill's own loader does not: write the output in a folder above "
-                "the images, or use --images-mode copy or link"
+                "the images, or use --images-mode link (the default) or copy"
             ),
             stacklevel=3,
         )
