@@ -493,7 +493,7 @@ def test_bad_options_are_usage_errors(world, options, message):
 def test_output_may_not_overwrite_an_input(world):
     with pytest.raises(UsageError, match="is one of the input files"):
         world.merge(synthetic_share=0.2, out=world.train)
-    with pytest.raises(UsageError, match="--guard .*train.json is given twice or is the real training split"):
+    with pytest.raises(UsageError, match="--guard .*train.json is the real training split itself"):
         world.merge(synthetic_share=0.2, guards=[world.val, world.train])
     with pytest.raises(UsageError, match="--guard .*val.json is given twice"):
         world.merge(synthetic_share=0.2, guards=[world.val, world.root / "held" / ".." / "held" / "val.json"])

@@ -211,8 +211,10 @@ def _check_paths(
     for option, paths in (("--synthetic", synthetic), ("--guard", guards)):
         resolved = [p.resolve() for p in paths]
         for path in resolved:
-            if resolved.count(path) > 1 or path == real.resolve():
-                raise UsageError(f"{option} {path} is given twice or is the real training split itself")
+            if path == real.resolve():
+                raise UsageError(f"{option} {path} is the real training split itself")
+            if resolved.count(path) > 1:
+                raise UsageError(f"{option} {path} is given twice")
     return inputs
 
 
