@@ -62,8 +62,7 @@ def merge(
     mapping : path, optional
         Category mapping file (see :func:`load_mapping`).
     images_mode : {"link", "copy", "relative"}
-        Hard links or copies of the images in ``<out stem>_images/``, or names of the original files
-        (see :func:`.output.place_images`). The default, ``link``, costs no space and always loads back.
+        See :func:`.output.place_images`. The default, ``link``, costs no space and always loads back.
     seed : int
         Seeds the selection; recorded in the output's ``info``.
 
@@ -89,8 +88,7 @@ def merge(
     # 2. load everything and build the vocabulary
     real = load_dataset(real_json, real_images)
     sets = [_load_run(Path(s)) for s in synthetic]
-    names = load_mapping(mapping) if mapping is not None else {}
-    categories, to_out = merged_categories(real, sets, names, Path(mapping) if mapping is not None else None)
+    categories, to_out = merged_categories(real, sets, load_mapping(mapping) if mapping is not None else {}, mapping)
     out_names = {c["id"]: c["name"] for c in categories}
     _check_caps(caps, out_names.values())
 

@@ -41,7 +41,10 @@ def load_mapping(path: str | os.PathLike[str]) -> dict[str, str]:
 
 
 def merged_categories(
-    real: Dataset, sets: Sequence[tuple[Dataset, Path]], mapping: Mapping[str, str], mapping_file: Path | None
+    real: Dataset,
+    sets: Sequence[tuple[Dataset, Path]],
+    mapping: Mapping[str, str],
+    mapping_file: str | os.PathLike[str] | None,
 ) -> tuple[list[dict[str, Any]], list[dict[int, int]]]:
     """The merged categories and, per synthetic set, its category id -> merged category id.
 
@@ -53,7 +56,7 @@ def merged_categories(
         Each synthetic set with its labels file (named in errors).
     mapping : mapping
         ``{"their name": "our name"}``; a name mapped to itself is appended as a new category.
-    mapping_file : Path or None
+    mapping_file : path or None
         Where ``mapping`` came from (named in errors).
 
     Raises
