@@ -19,12 +19,12 @@ import cv2
 import numpy as np
 
 from .geometry import GroundModel, ground_distance, lateral_offset
-from .surface import footprint_share
 
-ASSUMED_HFOV_DEG = 60.0
-"""Horizontal field of view assumed when the focal length is not given: forward vehicle cameras span
-about 50-90 degrees (from memory); the focal length only scales distances along the road in the gap
-filter, never the scale or surface filters."""
+# The focal-length helpers live with the distances; the filters have always offered them too.
+from .geometry.distances import ASSUMED_HFOV_DEG as ASSUMED_HFOV_DEG
+from .geometry.distances import focal_from_fov as focal_from_fov
+from .geometry.distances import focal_length
+from .surface import footprint_share
 
 
 @dataclass(frozen=True)
@@ -271,16 +271,6 @@ def objects(count: int, limits: FilterLimits) -> Verdict:
     return Verdict("objects", passed, float(count), float(limits.max_objects), reason)
 
 
-def focal_from_fov(width: int, *, hfov_deg: float = ASSUMED_HFOV_DEG) -> float:
-    """Focal length (px) of an image ``width`` px wide with horizontal field of view ``hfov_deg``.
-
-    ``f = (W / 2) / tan(hfov / 2)`` (pinhole; Hartley & Zisserman 2004).
-    """
-    if not 0 < hfov_deg < 180:
-        raise ValueError(f"hfov_deg must be in (0, 180), got {hfov_deg}")
-    return (width / 2) / math.tan(math.radians(hfov_deg) / 2)
-
-
 def check_geometry(
     box: Sequence[float],
     category: str,
@@ -307,7 +297,8 @@ def check_geometry(
     surface_mask : (H, W) bool ndarray
     limits : FilterLimits
     focal_px : float, optional
-        Focal length for the gap filter; default :func:`focal_from_fov` of the model's image width.
+        Focal length for the gap filter; default the model's (:func:`~pipeline.geometry.distances.focal_length`:
+        its calibration, else an assumed field of view).
     camera_height_m : float, optional
         Default: the model's estimate.
     image_id : int, optional
@@ -318,7 +309,7 @@ def check_geometry(
     list of Verdict
         In the order scale, surface, overlap, gap, objects.
     """
-    focal = focal_from_fov(ground.image_width) if focal_px is None else focal_px
+    focal = focal_length(ground) if focal_px is None else focal_px
     return [
         scale(box, category, ground, limits, image_id=image_id),
         surface(box, surface_mask, limits),

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from .filters import Verdict, check_geometry, scale, seam, surface
+from .geometry import ground_for
 from .stages.base import Candidate, StageContext
 
 PRESENT_FILTER = "present"
@@ -20,11 +21,12 @@ def judge(candidate: Candidate, ctx: StageContext) -> list[Verdict]:
     names = ctx.dataset.category_names()
     surface_mask = ctx.surface(candidate.scene).mask
     image_id = candidate.scene.id
+    ground = ground_for(ctx.ground, candidate.scene)
     verdicts: list[Verdict] = []
     for index in candidate.checked:
         if index >= 0:
             ann = candidate.kept[index]
-            verdicts.append(scale(ann.bbox, names[ann.category_id], ctx.ground, ctx.limits, image_id=image_id))
+            verdicts.append(scale(ann.bbox, names[ann.category_id], ground, ctx.limits, image_id=image_id))
             verdicts.append(surface(ann.bbox, surface_mask, ctx.limits))
             continue
         j = -1 - index
@@ -33,7 +35,7 @@ def judge(candidate: Candidate, ctx: StageContext) -> list[Verdict]:
             n.bbox for i, n in enumerate(candidate.new) if i != j
         ]
         verdicts += check_geometry(
-            obj.bbox, names[obj.category_id], others, ctx.ground, surface_mask, ctx.limits, image_id=image_id
+            obj.bbox, names[obj.category_id], others, ground, surface_mask, ctx.limits, image_id=image_id
         )
     if ctx.verifier is not None:
         for obj in candidate.new:

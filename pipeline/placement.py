@@ -20,7 +20,7 @@ import numpy as np
 from . import filters
 from .dataset import Dataset, Scene
 from .filters import FilterLimits
-from .geometry import GroundModel
+from .geometry import GroundModel, focal_length
 from .surface import Surface
 
 
@@ -100,6 +100,7 @@ def sample_box(
     category : str
         Class name known to ``ground`` and present in ``aspect_ratios``.
     ground : GroundModel
+        The model of the scene's camera (:func:`pipeline.geometry.ground_for`).
     surface : Surface
         The scene's drivable surface.
     rng : numpy Generator, int or None
@@ -110,7 +111,7 @@ def sample_box(
     existing_boxes : (N, 4) floats, optional
         Objects already in the image; default the scene's annotation boxes.
     focal_px : float, optional
-        For the gap filter; default :func:`pipeline.filters.focal_from_fov` of the image width.
+        For the gap filter; default the model's (:func:`pipeline.geometry.focal_length`).
     min_height_px : float
         Smallest box height: smaller objects are too few pixels for the generator to draw (12 px is the
         smallest object size with recognisable structure for our 64 px generator windows).
@@ -140,7 +141,7 @@ def sample_box(
     others = [tuple(b) for b in (existing_boxes if existing_boxes is not None else (a.bbox for a in scene.annotations))]
     if not filters.objects(len(others) + 1, limits):
         return NoPlacement(f"image already holds {len(others)} objects (limit {limits.max_objects})", {"objects": 1})
-    focal = filters.focal_from_fov(ground.image_width) if focal_px is None else focal_px
+    focal = focal_length(ground) if focal_px is None else focal_px
 
     # 2. footprint rows where the class is tall enough (the scene's own horizon when the fit saw it)
     horizon = ground.horizon_for(scene.id)

@@ -9,6 +9,7 @@ from __future__ import annotations
 import io
 import os
 from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
 
 import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
@@ -51,6 +52,7 @@ def save_scale_plot(
     image_height: int,
     note: str = "",
     dpi: int = 90,
+    groups: Sequence[ScalePanel] = (),
 ) -> None:
     """Box height against bottom row: real boxes as small dots, new instances as large outlined markers.
 
@@ -68,15 +70,52 @@ def save_scale_plot(
         Rows of the images (the x axis ends there).
     note : str
         A line under the title (where the ground model came from, or why there is none).
+    groups : sequence of ScalePanel, optional
+        Several camera groups: one panel each (its name, its boxes, its model, its image height); then
+        ``real``, ``new``, ``ground`` and ``image_height`` are not used.
 
     References
     ----------
     Hoiem, Efros, Hebert, "Putting Objects in Perspective", CVPR 2006 (box height linear in the bottom
     row for a level camera over a ground plane).
     """
+    title = "Scale: box height vs. bottom row (dots real, diamonds new)" + (f"\n{note}" if note else "")
+    if not groups:
+        fig = _new_figure(9.4, 4.8, dpi)
+        ax = fig.add_subplot()
+        handles = _draw_scale(ax, real, new, ground, image_height)
+        ax.set_title(title, fontsize=10)
+        fig.legend(handles=handles, fontsize=8, loc="outside right upper", frameon=False)
+        _save(fig, path)
+        return
+    columns = min(3, len(groups))
+    rows = -(-len(groups) // columns)
+    fig = _new_figure(5.2 * columns, 4.2 * rows, dpi)
+    axes = np.atleast_1d(fig.subplots(rows, columns, squeeze=False)).ravel()
+    for ax, panel in zip(axes, groups, strict=False):
+        handles = _draw_scale(ax, panel.real, panel.new, panel.ground, panel.image_height)
+        ax.set_title(f"camera {panel.name}", fontsize=9)
+        ax.legend(handles=handles, fontsize=6, loc="upper left")
+    for ax in axes[len(groups) :]:
+        ax.set_visible(False)
+    fig.suptitle(title, fontsize=10)
+    _save(fig, path)
+
+
+@dataclass(frozen=True)
+class ScalePanel:
+    """One camera group's panel of the scale plot: its name, real and new boxes, model and image height."""
+
+    name: str
+    real: Boxes
+    new: Boxes
+    ground: GroundModel | None
+    image_height: int
+
+
+def _draw_scale(ax, real: Boxes, new: Boxes, ground: GroundModel | None, image_height: int) -> list[Line2D]:
+    """Draw the scale plot's boxes, lines and horizon on ``ax``; return the legend handles."""
     names = sorted(set(real) | set(new))
-    fig = _new_figure(9.4, 4.8, dpi)
-    ax = fig.add_subplot()
     rows_seen = [float(image_height)]
     # One legend entry per class (dot and line together), one per class with new instances, the horizon.
     handles: list[Line2D] = []
@@ -139,12 +178,8 @@ def save_scale_plot(
     ax.set_ylim(0, None)
     ax.set_xlabel("bottom row of the box (px, top-down)")
     ax.set_ylabel("box height (px)")
-    ax.set_title(
-        "Scale: box height vs. bottom row (dots real, diamonds new)" + (f"\n{note}" if note else ""), fontsize=10
-    )
     ax.grid(alpha=0.3)
-    fig.legend(handles=handles, fontsize=8, loc="outside right upper", frameon=False)
-    _save(fig, path)
+    return handles
 
 
 def box_sizes(boxes: np.ndarray) -> np.ndarray:

@@ -24,7 +24,7 @@ from .dataset import Annotation, Dataset, Scene, category_entry, load_dataset
 from .errors import ModelError, UsageError
 from .filters import FilterLimits, phash
 from .generator import Generator
-from .geometry import GroundModel, fit_ground
+from .geometry import CameraGroups, fit_cameras
 from .judge import judge
 from .placement import aspect_ratios
 from .plan import Job, Plan, make_plan
@@ -41,7 +41,7 @@ class Setup:
 
     recipe: Recipe
     dataset: Dataset
-    ground: GroundModel
+    ground: CameraGroups
     limits: FilterLimits
     plan: Plan
     ratios: dict[str, np.ndarray]
@@ -89,8 +89,16 @@ def prepare(recipe: Recipe) -> Setup:
         limits = FilterLimits(**recipe.filters)
     except ValueError as exc:
         raise UsageError(f"{recipe.path}: filters: {exc}") from None
-    ground = fit_ground(dataset, priors=dict(recipe.height_priors) or None)
-    sources = [stage_module(spec.kind).eligible(dataset, spec, limits) for spec in recipe.stages]
+    ground = fit_cameras(dataset, priors=dict(recipe.height_priors) or None)
+    # An image whose camera group has too few boxes for a ground model cannot be a source.
+    sources = [
+        [
+            s
+            for s in stage_module(spec.kind).eligible(dataset, spec, limits)
+            if ground.has_image(dataset.scenes[s[0]].id)
+        ]
+        for spec in recipe.stages
+    ]
     plan = make_plan(recipe, sources)
     return Setup(recipe, dataset, ground, limits, plan, aspect_ratios(dataset), footprint_rows(dataset))
 

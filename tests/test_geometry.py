@@ -324,8 +324,11 @@ def test_cli_ground_prints_the_horizon_and_writes_json_and_plot(tmp_path):
     result = runner.invoke(app, ["ground", str(path), "--json", "--plot", str(tmp_path / "plot.png")])
     assert result.exit_code == 0, result.output
     data = json.loads(result.output)
-    assert isinstance(data["horizon_row"], float)
-    assert {"height_ratio", "spread", "n_boxes", "source"} <= set(data["classes"]["car"])
+    assert data["format"] == "rarefill.ground-groups/1"
+    (group,) = data["groups"].values()
+    assert isinstance(group["horizon_row"], float)
+    assert {"height_ratio", "spread", "n_boxes", "source"} <= set(group["classes"]["car"])
+    assert data["class_heights_m"]["car"]["metres"] > 0
     with Image.open(tmp_path / "plot.png") as plot:
         assert plot.format == "PNG" and plot.size[0] > 400
 

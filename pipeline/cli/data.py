@@ -3,12 +3,14 @@
 from __future__ import annotations
 
 import json
+from collections import Counter
 from pathlib import Path
 from typing import Annotated
 
 import typer
 from rich.table import Table
 
+from ..geometry import GroundModel
 from .base import ImagesOption, app, reports_errors, stdout
 
 
@@ -64,35 +66,62 @@ def ground(
     ctx: typer.Context,
     dataset: Annotated[Path, typer.Argument(help="COCO detection JSON file.")],
     images: ImagesOption = None,
-    as_json: Annotated[bool, typer.Option("--json", help="Print JSON instead of a table.")] = False,
+    as_json: Annotated[bool, typer.Option("--json", help="Print JSON instead of tables.")] = False,
     plot: Annotated[
-        Path | None, typer.Option("--plot", help="Write a PNG of box height vs. bottom row with the fitted lines.")
+        Path | None,
+        typer.Option("--plot", help="Write a PNG of box height vs. bottom row with the fitted lines, by camera group."),
     ] = None,
 ) -> None:
-    """Fit the ground-plane model from the labels: horizon row and each class's height / camera height.
+    """Fit the ground-plane model from the labels: per camera group a horizon row and a camera height,
+    per class its height / camera height and one real height in metres shared by the groups.
 
-    Box height = (H / h_cam) x (bottom row - horizon row) for a level camera (Hoiem et al., 2006).
+    Box height = (H / h_cam) x (bottom row - horizon row) for a level camera (Hoiem et al., 2006). Images
+    are grouped by their `camera` name, else their `intrinsics` {fx, fy, cx, cy}, else their size. A box's
+    own 3D height (`height_m`, or `dim_hwl_m` [h, w, l] in metres) sets the metres before the built-in priors.
 
     Example: rarefill ground seed_scenes/train.json --plot ground.png
     """
     from ..dataset import load_dataset
-    from ..geometry import fit_ground
+    from ..geometry import fit_cameras
     from ..plots import save_ground_plot
 
     data = load_dataset(dataset, images, check_images=False)
-    model = fit_ground(data)
+    model = fit_cameras(data)
     if plot is not None:
         save_ground_plot(data, model, plot)
     if as_json:
         typer.echo(json.dumps(model.to_dict(), indent=2))
         return
-    camera = "unknown" if model.camera_height_m is None else f"{model.camera_height_m:.2f} m (from prior heights)"
-    table = Table(title=f"{dataset}: horizon row {model.horizon_row:.1f}, camera height {camera}")
+    out = stdout()
+    counts = Counter(model.image_groups.values())
+    for name, group in model.groups.items():
+        out.print(_group_table(name, group, counts[name]))
+    for name, reason in model.unfitted.items():
+        out.print(f"camera {name} ({counts[name]} images): no ground model: {reason}")
+    table = Table(title="real class heights, shared by the camera groups")
+    for column in ("category", "height (m)", "known (m)", "known from"):
+        table.add_column(column, justify="left" if column in ("category", "known from") else "right")
+    for name, h in model.class_heights.items():
+        shown = [f"{v:.2f}" if v is not None else "-" for v in (h.metres, h.known_m)]
+        table.add_row(name, *shown, h.known_from or "-")
+    out.print(table)
+
+
+def _group_table(name: str, group: GroundModel, n_images: int) -> Table:
+    camera = "unknown" if group.camera_height_m is None else f"{group.camera_height_m:.2f} m"
+    horizon = f"horizon row {group.horizon_row:.1f}"
+    if group.horizon_source != "fitted":
+        horizon += " = principal row (too few boxes to fit it: level camera assumed)"
+    elif group.intrinsics is not None:
+        pitch = group.intrinsics.pitch_deg(group.horizon_row)
+        horizon += f", principal row {group.intrinsics.cy:.1f} (pitch {pitch:+.2f} deg)"
+    title = f"camera {name} ({n_images} images): {horizon}; camera height {camera}"
+    table = Table(title=title)
     for column in ("category", "H / h_cam", "spread (log sd)", "boxes used", "source"):
         table.add_column(column, justify="left" if column in ("category", "source") else "right")
-    for name, c in model.classes.items():
-        table.add_row(name, f"{c.height_ratio:.3f}", f"{c.spread:.3f}", str(c.n_boxes), c.source)
-    stdout().print(table)
+    for cls_name, c in group.classes.items():
+        table.add_row(cls_name, f"{c.height_ratio:.3f}", f"{c.spread:.3f}", str(c.n_boxes), c.source)
+    return table
 
 
 @app.command("render-demo")

@@ -24,11 +24,12 @@ from collections.abc import Mapping
 from dataclasses import dataclass
 from pathlib import Path
 
-from ..dataset import Dataset
+from ..dataset import Annotation, Dataset, Scene
 from ..errors import DatasetError
 from ..files import write_bytes_atomic
-from ..geometry import GroundModel, fit_ground
-from ..report_plots import save_class_counts, save_scale_plot, save_size_histograms
+from ..geometry import CameraGroups, fit_cameras
+from ..provenance import KEY
+from ..report_plots import ScalePanel, save_class_counts, save_scale_plot, save_size_histograms
 from .markup import _accepted_card, _document, _esc, _funnel_html, _gallery, _plots_html, _rejected_card, _source_links
 from .run_record import Funnel, RunRecord, _boxes_by_class, _is_synthetic, _pairs, funnel, read_run, real_from_labels
 from .thumbnails import ASSETS, NEW_BOX_RGB, REAL_BOX_RGB, _make_thumbnails, annotated_thumbnail
@@ -62,6 +63,32 @@ class ReportResult:
 # plots
 
 
+def _scale_panels(
+    fitted: CameraGroups, reference: Dataset, labels: Dataset, new_pairs: list[tuple[Annotation, Scene]]
+) -> list[ScalePanel]:
+    """One scale panel per camera group: the group's real boxes, and the new ones made from its images."""
+    panels = []
+    for name, model in fitted.groups.items():
+        own = [(a, s) for a, s in _pairs(reference) if fitted.image_groups.get(s.id) == name]
+        made = [(a, s) for a, s in new_pairs if fitted.image_groups.get(_source_image_id(s)) == name]
+        panels.append(
+            ScalePanel(
+                name,
+                _boxes_by_class(own, reference.categories, usable_only=True),
+                _boxes_by_class(made, labels.categories),
+                model,
+                model.image_height,
+            )
+        )
+    return panels
+
+
+def _source_image_id(scene: Scene) -> int | None:
+    record = scene.extra.get(KEY)
+    source = record.get("source") if isinstance(record, Mapping) else None
+    return source.get("image_id") if isinstance(source, Mapping) else None
+
+
 def _plots(run: RunRecord, real: Dataset | None) -> str:
     """Fit the ground model, draw the three plots; return the note saying what "real" is."""
     labels = run.labels
@@ -71,10 +98,10 @@ def _plots(run: RunRecord, real: Dataset | None) -> str:
     else:
         what = f"the kept (real) annotations of the run's {len(reference.scenes)} source images"
     try:
-        ground: GroundModel | None = fit_ground(reference)
+        fitted: CameraGroups | None = fit_cameras(reference)
         note = f"ground model fitted on {what}"
     except DatasetError as exc:
-        ground = None
+        fitted = None
         note = f"no ground model: {exc.reason} (tried on {what})"
 
     new_pairs = [(a, s) for a, s in _pairs(labels) if _is_synthetic(a, labels)]
@@ -82,14 +109,13 @@ def _plots(run: RunRecord, real: Dataset | None) -> str:
     new = _boxes_by_class(new_pairs, labels.categories)
     assets = run.root / ASSETS
     height = max([s.height for s in labels.scenes] + [s.height for s in reference.scenes] + [1])
-    save_scale_plot(
-        _boxes_by_class(_pairs(reference), reference.categories, usable_only=True),
-        new,
-        assets / "scale.png",
-        ground=ground,
-        image_height=height,
-        note=note,
-    )
+    real_boxes = _boxes_by_class(_pairs(reference), reference.categories, usable_only=True)
+    if fitted is None or len(fitted.groups) == 1:
+        ground = None if fitted is None else next(iter(fitted.groups.values()))
+        save_scale_plot(real_boxes, new, assets / "scale.png", ground=ground, image_height=height, note=note)
+    else:
+        save_scale_plot({}, {}, assets / "scale.png", ground=None, image_height=height, note=note,
+                        groups=_scale_panels(fitted, reference, labels, new_pairs))  # fmt: skip
     order = [c.name for c in labels.categories]
     before = _boxes_by_class(_pairs(reference), reference.categories)
     save_size_histograms(before, new, assets / "sizes.png")

@@ -17,7 +17,7 @@ import numpy as np
 from ..dataset import Annotation, Dataset, Scene
 from ..filters import FilterLimits
 from ..generator import Generator, InpaintRequest
-from ..geometry import GroundModel
+from ..geometry import CameraGroups, GroundModel
 from ..recipe import StageSpec
 from ..surface import Surface
 
@@ -29,12 +29,13 @@ class StageContext:
     ``surface`` returns the drivable surface of a scene (the runner caches it); ``aspect_ratios`` maps
     a class name to the width/height ratios of its real boxes; ``footprint_rows`` is the band of image
     rows where real objects stand (new ones stand there too: nearer, objects would be larger than any the
-    generator learned from; farther, too small to draw); ``verifier`` may be None.
+    generator learned from; farther, too small to draw); ``verifier`` may be None. ``ground`` is the data
+    set's ground models by camera group; a stage gets a scene's own with :func:`pipeline.geometry.ground_for`.
     """
 
     dataset: Dataset
     generator: Generator
-    ground: GroundModel
+    ground: GroundModel | CameraGroups
     limits: FilterLimits
     surface: Callable[[Scene], Surface]
     aspect_ratios: Mapping[str, np.ndarray]

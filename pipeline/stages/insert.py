@@ -19,6 +19,7 @@ from ..dataset import Dataset
 from ..filters import FilterLimits
 from ..generator import InpaintRequest
 from ..generator.windows import box_mask, object_mask_box
+from ..geometry import ground_for
 from ..placement import sample_box
 from ..plan import Job, derive_seed
 from ..recipe import StageSpec
@@ -84,10 +85,11 @@ def draft(job: Job, attempt: int, spec: StageSpec, ctx: StageContext) -> Draft |
     shape = (scene.height, scene.width)
     margin = spec.options["mask_margin"]
     placed = []
+    ground = ground_for(ctx.ground, scene)
     for _ in range(wanted):
         for _ in range(OCCLUSION_TRIES):
             placement = sample_box(
-                scene, spec.target_class, ctx.ground, surface, rng, ctx.limits,
+                scene, spec.target_class, ground, surface, rng, ctx.limits,
                 aspect_ratios=ctx.aspect_ratios, existing_boxes=boxes,
             )  # fmt: skip
             if not placement or not _paints_over_nearer(placement, scene.annotations, shape, margin):

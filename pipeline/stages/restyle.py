@@ -5,8 +5,9 @@ draft has no inpainting requests. Distances come from the fitted ground model: g
 row, labelled objects at their footprint (bottom-row) distance over their pixels (segmentation, else a
 GrabCut estimate inside the box), sky at infinity, and trees or houses rising above the horizon at the
 distance where a 10 m tall thing would reach their top row. The focal length is not in the labels: it is taken
-from an assumed 60-degree horizontal field of view (:func:`pipeline.filters.focal_from_fov`), the camera
-height from the ground model (else :data:`pipeline.weather.DEFAULT_CAMERA_HEIGHT_M`).
+from the image's calibration when its camera group has one, else an assumed 60-degree horizontal field of view
+(:func:`pipeline.geometry.focal_length`); the horizon and camera height from the image's own camera group
+(:func:`pipeline.geometry.ground_for`; camera height else :data:`pipeline.weather.DEFAULT_CAMERA_HEIGHT_M`).
 
 A learned restyle (partial noising and denoising of the whole frame under a condition label, SDEdit-style)
 is not available: no generator supports a condition label yet (``InpaintRequest.condition`` must be None).
@@ -44,7 +45,8 @@ import numpy as np
 
 from .. import weather
 from ..dataset import Annotation, Dataset, Scene
-from ..filters import FilterLimits, focal_from_fov
+from ..filters import FilterLimits
+from ..geometry import focal_length, ground_for
 from ..plan import Job
 from ..recipe import StageSpec
 from .base import Candidate, Draft, Failure, StageContext
@@ -159,21 +161,22 @@ def complete(draft_: Draft, frames: Sequence[np.ndarray], ctx: StageContext) -> 
 
 def scene_geometry(image: np.ndarray, scene: Scene, ctx: StageContext) -> Geometry:
     """Distances per pixel (see :func:`pipeline.weather.scene_distance`) and each labelled object's pixels."""
-    ground = ctx.ground
+    ground = ground_for(ctx.ground, scene)
     height, width = image.shape[:2]
-    focal = focal_from_fov(width)
+    focal = focal_length(ground)
     camera = ground.camera_height_m or weather.DEFAULT_CAMERA_HEIGHT_M
+    horizon = ground.horizon_for(scene.id)
     labelled = tuple(a for a in scene.annotations if not a.iscrowd)
     regions = tuple(object_pixels(image, a)[0] for a in labelled)
     distance = weather.scene_distance(
         (height, width),
-        horizon_row=ground.horizon_row,
+        horizon_row=horizon,
         focal_px=focal,
         camera_height_m=camera,
         objects=[(region, a.bottom_row) for region, a in zip(regions, labelled, strict=True)],
-        scenery=~weather.sky_mask(image, ground.horizon_row),
+        scenery=~weather.sky_mask(image, horizon),
     )
-    return Geometry(distance, regions, labelled, ctx.surface(scene).mask, ground.horizon_row, focal, camera)
+    return Geometry(distance, regions, labelled, ctx.surface(scene).mask, horizon, focal, camera)
 
 
 def visibility(clear: np.ndarray, veiled: np.ndarray, geometry: Geometry, *, beta: float) -> list[dict[str, Any]]:
