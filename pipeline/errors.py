@@ -68,5 +68,12 @@ class RunError(RarefillError):
     exit_code = 1
 
 
+class ShardError(RarefillError):
+    """The shard folders given to collect are not one whole, finished run; the message names the shard."""
+
+    exit_code = 2
+    hint = "give collect the folders of every shard of one run, each run to the end"
+
+
 class DatasetWarning(UserWarning):
     """Something was accepted but changed or guessed (a clipped box, an estimated surface)."""

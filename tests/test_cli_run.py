@@ -90,7 +90,27 @@ def test_collect_refuses_an_incomplete_set_of_shards(tmp_path, tiny_model):
     part = tmp_path / "p0"
     assert runner.invoke(app, ["run", recipe, "--shard", "0/2", "--out", str(part)]).exit_code == 0
     result = runner.invoke(app, ["collect", str(part), "--out", str(tmp_path / "whole")])
-    assert result.exit_code == 1 and "need each shard 0/2 .. 1/2 exactly once" in result.stderr
+    assert result.exit_code == 2 and "shard 1/2 missing" in result.stderr
+
+
+def test_shard_auto_takes_the_slurm_array_task(tmp_path, tiny_model, monkeypatch):
+    monkeypatch.delenv("JOB_COMPLETION_INDEX", raising=False)
+    monkeypatch.setenv("SLURM_ARRAY_TASK_ID", "1")
+    monkeypatch.setenv("SLURM_ARRAY_TASK_COUNT", "2")
+    recipe = str(_recipe(tmp_path, tiny_model, count=9))
+    result = runner.invoke(app, ["run", recipe, "--shard", "auto", "--out", str(tmp_path / "p1")])
+    assert result.exit_code == 0, result.output
+    assert "shard 1/2 (from SLURM_ARRAY_TASK_ID=1" in result.stderr
+    assert json.loads((tmp_path / "p1" / "run.json").read_text())["shard"] == "1/2"
+    # 9 jobs are chunks 0 (8 jobs) and 1 (1 job): shard 1/2 made the second only
+    assert sorted(p.name for p in (tmp_path / "p1" / "chunks").iterdir()) == ["000001.json"]
+
+
+def test_shard_auto_outside_a_scheduler_exits_2(tmp_path, monkeypatch):
+    for name in ("SLURM_ARRAY_TASK_ID", "SLURM_ARRAY_TASK_COUNT", "JOB_COMPLETION_INDEX"):
+        monkeypatch.delenv(name, raising=False)
+    result = runner.invoke(app, ["run", str(tmp_path / "any.toml"), "--shard", "auto"])
+    assert result.exit_code == 2 and "--shard auto: no scheduler index" in result.stderr
 
 
 def test_demo_recipe_is_valid():

@@ -2,24 +2,13 @@
 
 from __future__ import annotations
 
+import os
 from pathlib import Path
 from typing import Annotated
 
 import typer
 
 from .base import app, reports_errors, stderr, stdout
-
-
-def _parse_shard(text: str) -> tuple[int, int]:
-    from ..errors import UsageError
-
-    try:
-        index, count = (int(v) for v in text.split("/"))
-    except ValueError:
-        raise UsageError(f"--shard must look like i/N (e.g. 0/4), got {text!r}") from None
-    if count < 1 or not 0 <= index < count:
-        raise UsageError(f"--shard i/N needs 0 <= i < N, got {text!r}")
-    return index, count
 
 
 def _print_run_summary(summary) -> None:
@@ -66,7 +55,12 @@ def run(
     ] = None,
     workers: Annotated[int, typer.Option("--workers", min=1, help="Worker processes (CPU cores to use).")] = 1,
     shard: Annotated[
-        str, typer.Option("--shard", help="Run slice i of N of the plan, e.g. 0/4 (see the README for schedulers).")
+        str,
+        typer.Option(
+            "--shard",
+            help="Run slice i of N of the plan, e.g. 0/4; `auto` takes it from a Slurm job array, `auto/N` from "
+            "a Kubernetes Indexed Job of N completions (see the README).",
+        ),
     ] = "0/1",
 ) -> None:
     """Make synthetic images from a recipe: place, generate, judge, write labels with provenance.
@@ -77,13 +71,17 @@ def run(
     Example: rarefill run recipes/more-tractors.toml --limit 16
     """
     from ..recipe import load_recipe
+    from ..shard import parse_shard
 
+    part = parse_shard(shard, os.environ)
+    if part.source != "command line":
+        stderr().print(f"shard {part} (from {part.source})", markup=False)
     recipe = load_recipe(recipe_file)
     if out is not None:
         recipe = recipe.with_output(out)
     if limit is not None:
         recipe = recipe.with_limit(limit)
-    summary = _run_with_progress(recipe, workers=workers, shard=_parse_shard(shard))
+    summary = _run_with_progress(recipe, workers=workers, shard=part.pair)
     _print_run_summary(summary)
 
 

@@ -34,7 +34,13 @@ MARGIN = 0.1
 """Crop = box grown by this fraction of its width/height on every side (some surroundings for contrast)."""
 
 
-class _Net(nn.Module):
+class CropNet(nn.Module):
+    """A small crop classifier: conv-ReLU-maxpool stages, a 2x2 average pool, a 64-wide hidden layer.
+
+    Any input size of at least ``2 ** len(channels)`` pixels works (the pool is adaptive).
+    ``embed`` gives the 64-wide hidden layer (the penultimate layer), ``forward`` the logits.
+    """
+
     def __init__(self, n_classes: int, channels: Sequence[int]) -> None:
         super().__init__()
         layers: list[nn.Module] = []
@@ -48,13 +54,17 @@ class _Net(nn.Module):
     def forward(self, x: torch.Tensor) -> torch.Tensor:
         return self.head(self.features(x))
 
+    def embed(self, x: torch.Tensor) -> torch.Tensor:
+        """The penultimate layer: (N, 3, S, S) float tensor -> (N, 64) float tensor (after its ReLU)."""
+        return self.head[:2](self.features(x))
+
 
 @dataclass
 class Verifier:
     """A trained crop classifier. ``classes[0]`` is ``"background"``, the rest are object classes."""
 
     classes: tuple[str, ...]
-    net: _Net
+    net: CropNet
     channels: tuple[int, ...]
     crop_px: int = CROP_PX
     margin: float = MARGIN
@@ -80,7 +90,7 @@ class Verifier:
             return np.zeros((0, len(self.classes)), np.float32)
         crops = np.stack([crop_box(image, box, size=self.crop_px, margin=self.margin) for box in boxes])
         self.net.eval()
-        logits = self.net(_to_tensor(crops))
+        logits = self.net(crops_to_tensor(crops))
         return torch.softmax(logits, dim=1).numpy().astype(np.float32)
 
     def present_probability(self, image: np.ndarray, box: Sequence[float], label: str) -> float:
@@ -117,7 +127,8 @@ def crop_box(image: np.ndarray, box: Sequence[float], *, size: int, margin: floa
     return cv2.resize(crop, (size, size), interpolation=interpolation)
 
 
-def _to_tensor(crops: np.ndarray) -> torch.Tensor:
+def crops_to_tensor(crops: np.ndarray) -> torch.Tensor:
+    """(N, S, S, 3) uint8 crops -> (N, 3, S, S) float32 tensor scaled to [-1, 1], the nets' input."""
     return torch.from_numpy(np.ascontiguousarray(crops.transpose(0, 3, 1, 2))).float() / 127.5 - 1.0
 
 
@@ -163,7 +174,7 @@ def fit_verifier(
     labels = (BACKGROUND, *present)
     with torch.random.fork_rng():
         torch.manual_seed(int(rng.integers(2**62)))
-        net = _Net(len(classes), channels)
+        net = CropNet(len(classes), channels)
     optimizer = torch.optim.Adam(net.parameters(), lr=2e-3)
     net.train()
     for step in range(steps):
@@ -181,7 +192,7 @@ def fit_verifier(
             targets[i] = classes.index(label)
         for group in optimizer.param_groups:
             group["lr"] = 2e-3 * 0.5 * (1 + math.cos(math.pi * step / steps))
-        loss = nn.functional.cross_entropy(net(_to_tensor(crops)), torch.from_numpy(targets))
+        loss = nn.functional.cross_entropy(net(crops_to_tensor(crops)), torch.from_numpy(targets))
         optimizer.zero_grad(set_to_none=True)
         loss.backward()
         optimizer.step()
@@ -227,7 +238,7 @@ def load_verifier(folder: str | os.PathLike[str]) -> Verifier:
         meta = json.loads(meta_path.read_text(encoding="utf-8"))
         classes = tuple(meta["classes"])
         channels = tuple(int(c) for c in meta["channels"])
-        net = _Net(len(classes), channels)
+        net = CropNet(len(classes), channels)
         net.load_state_dict(load_safetensors(weights_path.read_bytes()))
     except (OSError, ValueError, KeyError, TypeError, RuntimeError) as exc:
         raise ModelError(f"{folder}: verifier cannot be loaded ({exc})") from None

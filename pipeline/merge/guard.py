@@ -11,8 +11,7 @@ import re
 import warnings
 from collections import Counter
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
-from typing import Any
+from typing import Any, NamedTuple
 
 from ..dataset import Dataset, Scene
 from ..errors import DatasetError, DatasetWarning
@@ -21,9 +20,8 @@ from ..provenance import KEY, file_sha256
 _SHA256 = re.compile(r"[0-9a-f]{64}")
 
 
-@dataclass(frozen=True)
-class GuardIndex:
-    """What identifies a guarded image.
+class GuardIndex(NamedTuple):
+    """What identifies a guarded image (a pair, so ``hashes, keys = guard_index(...)`` also works).
 
     Attributes
     ----------
@@ -48,8 +46,9 @@ class GuardIndex:
 def guard_index(guards: Sequence[Dataset]) -> GuardIndex:
     """Hash every guarded image file and collect every guarded ``(id, file_name)``.
 
-    A guarded split whose image files are (partly) absent gives one :class:`DatasetWarning`: those images
-    are guarded by id and file name only.
+    Shared by the merge's leakage guard and the realism audit's check that its held-out split made no
+    synthetic image. A guarded split whose image files are (partly) absent gives one
+    :class:`DatasetWarning`: those images are guarded by id and file name only.
     """
     hashes: dict[str, str] = {}
     keys: set[tuple[int, str]] = set()

@@ -30,6 +30,7 @@ from ..files import write_bytes_atomic
 from ..geometry import CameraGroups, fit_cameras
 from ..provenance import KEY
 from ..report_plots import ScalePanel, save_class_counts, save_scale_plot, save_size_histograms
+from .audit_section import audit_html
 from .markup import _accepted_card, _document, _esc, _funnel_html, _gallery, _plots_html, _rejected_card, _source_links
 from .run_record import Funnel, RunRecord, _boxes_by_class, _is_synthetic, _pairs, funnel, read_run, real_from_labels
 from .thumbnails import ASSETS, NEW_BOX_RGB, REAL_BOX_RGB, _make_thumbnails, annotated_thumbnail
@@ -195,7 +196,13 @@ def write_report(
     # 4. the overview page
     header = f"<h1>rarefill report: {_esc(run_name)}</h1><p>{subtitle}</p>"
     body = "\n".join(
-        [_funnel_html(counts), _plots_html(note, ""), gallery("accepted", 1, ""), gallery("rejected", 1, "")]
+        [
+            _funnel_html(counts),
+            audit_html(run.root),
+            _plots_html(note, ""),
+            gallery("accepted", 1, ""),
+            gallery("rejected", 1, ""),
+        ]
     )
     path = run.root / "report.html"
     write_bytes_atomic(path, _document(f"rarefill report: {run_name}", header, body).encode("utf-8"))

@@ -101,6 +101,13 @@ nav.pager { margin: 4px 0 12px; font-size: 13px; display: flex; flex-wrap: wrap;
 nav.pager a, nav.pager span.current { padding: 1px 7px; border-radius: 4px; border: 1px solid var(--line);
   text-decoration: none; color: #2a5d8f; }
 nav.pager span.current { background: #1d2a36; color: #fff; border-color: #1d2a36; }
+table.audit { border-collapse: collapse; font-variant-numeric: tabular-nums; }
+table.audit th, table.audit td { padding: 4px 10px; border-bottom: 1px solid var(--line); text-align: right; }
+table.audit th:first-child, table.audit td:first-child { text-align: left; font-weight: 600; }
+.pairs { display: flex; flex-wrap: wrap; gap: 10px; margin: 6px 0 12px; }
+.pair { margin: 0; border: 1px solid var(--line); border-radius: 6px; padding: 6px; background: #fff; }
+.pair img { width: 96px; height: 96px; image-rendering: auto; display: inline-block; border-radius: 3px; }
+.pair figcaption { font-size: 11.5px; color: var(--muted); max-width: 200px; overflow-wrap: anywhere; }
 """
 _COLOURS = f":root {{ --real: rgb{REAL_BOX_RGB}; --new: rgb{NEW_BOX_RGB}; }}"
 

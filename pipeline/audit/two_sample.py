@@ -1,0 +1,202 @@
+"""Classifier two-sample test: can a small CNN tell two sets of crops apart on crops it has not seen?
+
+The larger set is subsampled to the size of the smaller one (balanced classes, so chance is exactly 0.5).
+Both sets are split into ``folds`` stratified folds; for each fold a fresh :class:`CropNet` is trained on
+the others and predicts the held-out fold, so every crop is predicted once by a network that never saw
+it. The accuracy over all ``2 n`` predictions gets a Wilson score interval and a one-sided exact binomial
+p-value against chance. The folds share training data, so the predictions are not quite independent
+trials; the interval is the usual approximation (Lopez-Paz and Oquab use a single held-out split).
+
+References
+----------
+Lopez-Paz, Oquab, "Revisiting classifier two-sample tests", ICLR 2017: accuracy of a classifier on
+held-out samples as the test statistic, 0.5 under the null hypothesis that both samples share one
+distribution.
+Wilson, "Probable inference, the law of succession, and statistical inference", JASA 22, 1927: the score
+interval.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from fractions import Fraction
+from statistics import NormalDist
+
+import numpy as np
+import torch
+from torch import nn
+
+from ..generator.verifier import CropNet, crops_to_tensor
+
+CHANNELS = (16, 32, 64)
+"""Widths of the test network's three conv stages (the verifier's architecture)."""
+
+
+@dataclass(frozen=True)
+class TwoSampleResult:
+    """Outcome of :func:`two_sample_test`.
+
+    Attributes
+    ----------
+    accuracy : float
+        Share of held-out predictions that were right, in [0, 1].
+    low, high : float
+        Wilson score interval of the accuracy at ``confidence``.
+    correct, trials : int
+        ``trials = 2 n``.
+    p_value : float
+        One-sided exact binomial P(at least ``correct`` right | chance 0.5).
+    index_a, index_b : (n,) int64 ndarray
+        Which crops of ``a`` and ``b`` took part (the subsample).
+    score_b : (n,) float64 ndarray
+        Held-out probability that each used crop of ``b`` belongs to ``b`` (low = "looks like ``a``").
+    """
+
+    accuracy: float
+    low: float
+    high: float
+    correct: int
+    trials: int
+    p_value: float
+    index_a: np.ndarray
+    index_b: np.ndarray
+    score_b: np.ndarray
+
+    def to_dict(self) -> dict:
+        keys = ("accuracy", "low", "high", "correct", "trials", "p_value")
+        return {k: getattr(self, k) for k in keys}
+
+
+def wilson_interval(successes: int, trials: int, confidence: float = 0.95) -> tuple[float, float]:
+    """Wilson score interval of a binomial proportion.
+
+    Parameters
+    ----------
+    successes, trials : int
+        ``0 <= successes <= trials``, ``trials >= 1``.
+    confidence : float
+        In (0, 1).
+
+    Returns
+    -------
+    (low, high) : tuple of float
+
+    References
+    ----------
+    Wilson, JASA 22, 1927; worked examples in Newcombe, "Two-sided confidence intervals for the single
+    proportion: comparison of seven methods", Statistics in Medicine 17, 1998.
+    """
+    if trials < 1 or not 0 <= successes <= trials:
+        raise ValueError(f"need 0 <= successes <= trials and trials >= 1, got {successes}/{trials}")
+    if not 0 < confidence < 1:
+        raise ValueError(f"confidence must be in (0, 1), got {confidence}")
+    z = NormalDist().inv_cdf(0.5 + confidence / 2)
+    p = successes / trials
+    denominator = 1 + z * z / trials
+    centre = (p + z * z / (2 * trials)) / denominator
+    half = z * math.sqrt(p * (1 - p) / trials + z * z / (4 * trials * trials)) / denominator
+    return max(0.0, centre - half), min(1.0, centre + half)
+
+
+def binomial_tail(successes: int, trials: int) -> float:
+    """P(X >= successes) for X ~ Binomial(trials, 1/2), exact."""
+    if trials < 0 or not 0 <= successes <= trials:
+        raise ValueError(f"need 0 <= successes <= trials, got {successes}/{trials}")
+    return float(Fraction(sum(math.comb(trials, k) for k in range(successes, trials + 1)), 2**trials))
+
+
+def _train(crops: np.ndarray, labels: np.ndarray, *, epochs: int, batch_size: int, seed: int) -> CropNet:
+    rng = np.random.default_rng(seed)
+    with torch.random.fork_rng():
+        torch.manual_seed(seed)
+        net = CropNet(2, CHANNELS)
+    optimizer = torch.optim.Adam(net.parameters(), lr=2e-3)
+    x_all, y_all = crops_to_tensor(crops), torch.from_numpy(labels)
+    net.train()
+    for _ in range(epochs):
+        order = rng.permutation(len(crops))
+        for start in range(0, len(order), batch_size):
+            picked = order[start : start + batch_size]
+            x = x_all[picked]
+            flip = torch.from_numpy(rng.random(len(picked)) < 0.5)
+            # Mirror images are equally likely on both sides, so flipping teaches nothing false.
+            x = torch.where(flip[:, None, None, None], x.flip(3), x)
+            loss = nn.functional.cross_entropy(net(x), y_all[picked])
+            optimizer.zero_grad(set_to_none=True)
+            loss.backward()
+            optimizer.step()
+    net.eval()
+    return net
+
+
+def two_sample_test(
+    a: np.ndarray,
+    b: np.ndarray,
+    *,
+    folds: int = 5,
+    epochs: int = 30,
+    batch_size: int = 32,
+    confidence: float = 0.95,
+    rng: np.random.Generator | int | None = None,
+) -> TwoSampleResult:
+    """Held-out accuracy of a CNN telling crops of ``a`` from crops of ``b`` (k-fold cross-validation).
+
+    Parameters
+    ----------
+    a, b : (N, S, S, 3) and (M, S, S, 3) uint8 ndarray
+        Crops of one geometry; ``min(N, M) >= folds``.
+    folds : int
+        k of the k-fold cross-validation, >= 2.
+    epochs : int
+        Passes over each fold's training crops.
+    batch_size : int
+    confidence : float
+        Level of the Wilson interval.
+    rng : Generator, int or None
+        Seeds the subsample, the folds, the initial weights and every batch.
+
+    Returns
+    -------
+    TwoSampleResult
+
+    Raises
+    ------
+    ValueError
+        Shapes differ, the arrays are not uint8 crops, or a side has fewer crops than ``folds``.
+    """
+    for name, crops in (("a", a), ("b", b)):
+        if not isinstance(crops, np.ndarray) or crops.dtype != np.uint8 or crops.ndim != 4 or crops.shape[3] != 3:
+            raise ValueError(f"{name} must be an (N, S, S, 3) uint8 array, got {getattr(crops, 'shape', crops)}")
+    if a.shape[1:] != b.shape[1:]:
+        raise ValueError(f"a and b must share one crop geometry, got {a.shape[1:]} and {b.shape[1:]}")
+    if folds < 2 or epochs < 1 or batch_size < 1:
+        raise ValueError(f"need folds >= 2, epochs >= 1, batch_size >= 1, got {folds}, {epochs}, {batch_size}")
+    n = min(len(a), len(b))
+    if n < folds:
+        raise ValueError(f"each side needs at least {folds} crops (one per fold), got {len(a)} and {len(b)}")
+    rng = np.random.default_rng(rng)
+    index_a = np.sort(rng.permutation(len(a))[:n])
+    index_b = np.sort(rng.permutation(len(b))[:n])
+    crops = np.concatenate([a[index_a], b[index_b]])
+    labels = np.repeat(np.array([0, 1], np.int64), n)
+    fold_of = np.concatenate([rng.permutation(n) % folds, rng.permutation(n) % folds])
+    scores = np.zeros(2 * n, np.float64)
+    for fold in range(folds):
+        train, held = fold_of != fold, fold_of == fold
+        net = _train(crops[train], labels[train], epochs=epochs, batch_size=batch_size, seed=int(rng.integers(2**62)))
+        with torch.no_grad():
+            scores[held] = torch.softmax(net(crops_to_tensor(crops[held])), dim=1)[:, 1].double().numpy()
+    correct = int(np.sum((scores > 0.5) == (labels == 1)))
+    low, high = wilson_interval(correct, 2 * n, confidence)
+    return TwoSampleResult(
+        accuracy=correct / (2 * n),
+        low=low,
+        high=high,
+        correct=correct,
+        trials=2 * n,
+        p_value=binomial_tail(correct, 2 * n),
+        index_a=index_a,
+        index_b=index_b,
+        score_b=scores[n:],
+    )
