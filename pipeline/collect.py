@@ -16,7 +16,8 @@ from typing import Any
 
 from .errors import ShardError
 from .files import write_bytes_atomic
-from .writer import RunFolder, assemble, read_chunks
+from .tally import read_manifest, summary_record, tally_stages
+from .writer import SUMMARY_KEY, RunFolder, assemble, read_chunks
 
 _RERUN = "run that shard again with the same command: it resumes where it stopped"
 
@@ -110,7 +111,8 @@ def _check_same_run(shards: Sequence[ShardFolder]) -> None:
                 f"{str(shard.identity.get('plan_sha256'))[:12]}... vs {str(first.identity.get('plan_sha256'))[:12]}...",
                 hint="collect only the shards of one recipe, seed and --limit; rerun the odd one out",
             )
-        keys = (set(shard.identity) | set(first.identity)) - {"shard"}
+        # the summary a shard's run wrote when it finished is its own; the shards share everything else
+        keys = (set(shard.identity) | set(first.identity)) - {"shard", SUMMARY_KEY}
         changed = sorted(k for k in keys if shard.identity.get(k) != first.identity.get(k))
         if changed:
             raise ShardError(
@@ -165,7 +167,7 @@ def collect(shard_dirs: Sequence[Path], out: Path) -> dict[str, int]:
     """
     shards = verify_shards(shard_dirs)
     first = shards[0].identity
-    identity = {k: "0/1" if k == "shard" else v for k, v in first.items()}
+    identity = {k: "0/1" if k == "shard" else v for k, v in first.items() if k != SUMMARY_KEY}
     target = RunFolder.claim(Path(out), identity)
     for shard in shards:
         for record in read_chunks(shard.path, shard.chunks()):
@@ -173,4 +175,8 @@ def collect(shard_dirs: Sequence[Path], out: Path) -> dict[str, int]:
                 write_bytes_atomic(target.root / name, (shard.path / name).read_bytes())
             target.commit(record["chunk"], record["jobs"])
     info = json.loads((shards[0].path / "labels.json").read_text(encoding="utf-8"))["info"]
-    return assemble(target.root, range(first["chunks"]), categories=first["categories"], info={**info, "shard": "0/1"})
+    counts = assemble(
+        target.root, range(first["chunks"]), categories=first["categories"], info={**info, "shard": "0/1"}
+    )
+    target.write_summary(summary_record(tally_stages(read_manifest(target.root), first.get("stages", ()))))
+    return counts

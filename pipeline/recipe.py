@@ -175,6 +175,19 @@ STAGE_OPTIONS: dict[str, dict[str, tuple[Callable[[Any], Any], Any]]] = {
 }
 STAGE_KINDS = tuple(STAGE_OPTIONS)
 
+# Options that only some settings of a stage read: option -> (the key that decides, the values that read it).
+# Giving such an option where it is not read is an error naming it; where it is not read it is not filled
+# with its default either, so provenance records only the options that applied.
+OPTION_APPLIES: dict[str, dict[str, tuple[str, tuple[Any, ...]]]] = {
+    "restyle": {
+        "visibility_m": ("condition", ("fog",)),
+        "rain_mm_per_h": ("condition", ("rain",)),
+        "snow_intensity": ("condition", ("snow",)),
+        # only fog and snow veil objects until they are invisible
+        "keep_invisible_as_crowd": ("condition", ("fog", "snow")),
+    },
+}
+
 
 def _table(raw: Any, file: Path, key: str) -> dict:
     if not isinstance(raw, dict):
@@ -354,9 +367,27 @@ def _stages(raw: Any, path: Path) -> tuple[StageSpec, ...]:
         schema = {"kind": (_text, None), "class": (_text, None), "count": (_integer(1, 1_000_000), None)}
         schema.update(STAGE_OPTIONS[kind])
         values = _checked(entry, schema, path, where)
-        options = {k: values[k] for k in STAGE_OPTIONS[kind]}
+        options = _applied(kind, {k: values[k] for k in STAGE_OPTIONS[kind]}, set(entry), path, where)
         stages.append(StageSpec(i, kind, values["class"], values["count"], options))
     return tuple(stages)
+
+
+def _applied(kind: str, options: dict[str, Any], given: set[str], path: Path, where: str) -> dict[str, Any]:
+    """``options`` without those the stage's settings do not read; an error if the recipe gave one of them."""
+    out = dict(options)
+    for key, (decider, values) in OPTION_APPLIES.get(kind, {}).items():
+        if out[decider] in values:
+            continue
+        if key in given:
+            readers = ", ".join(repr(v) for v in values)
+            raise RecipeError(
+                path,
+                f"{where}.{key}",
+                f"does not apply to {decider} {out[decider]!r} (it is read only with {decider} {readers})",
+                hint="remove the key, or change the stage's " + decider,
+            )
+        del out[key]
+    return out
 
 
 def _default_filter_fields() -> dict[str, Any]:

@@ -2,7 +2,8 @@
 
 Layout of a run folder::
 
-    run.json         what the folder holds: recipe hash, plan fingerprint, shard, categories
+    run.json         what the folder holds: recipe hash, plan fingerprint, shard, stages, categories; and,
+                     once the run finished, its ``summary`` per stage (see :mod:`pipeline.tally`)
     chunks/NNNNNN.json   one committed chunk: every attempt of its jobs with verdicts, accepted outputs
     images/          accepted images (PNG)
     rejects/         thumbnails of rejected candidates (JPEG, half size)
@@ -32,6 +33,16 @@ from .files import write_bytes_atomic, write_json_atomic
 
 RUN_FORMAT = "rarefill.run/1"
 
+SUMMARY_KEY = "summary"
+"""Key of ``run.json`` that a finished run adds; it is not part of the run's identity."""
+
+REAL_BOX_RGB = (40, 170, 255)
+"""Colour of real (kept) boxes in thumbnails: a light blue."""
+NEW_BOX_RGB = (255, 120, 0)
+"""Colour of new (synthetic, re-fitted) boxes in thumbnails: orange, apart from the blue for colour-blind readers."""
+REQUESTED_BOX_RGB = (255, 255, 255)
+"""Colour of the box a stage asked the generator to fill, in reject thumbnails: white."""
+
 
 def encode_png(image: np.ndarray) -> bytes:
     """Lossless, deterministic PNG bytes of an ``(H, W, 3) uint8`` RGB image."""
@@ -41,13 +52,33 @@ def encode_png(image: np.ndarray) -> bytes:
     return data.tobytes()
 
 
-def encode_thumbnail(image: np.ndarray) -> bytes:
-    """Half-size JPEG of an RGB image, for rejected candidates."""
+def encode_thumbnail(image: np.ndarray, boxes: Sequence[Mapping[str, Any]] = ()) -> bytes:
+    """Half-size JPEG of an RGB image, for rejected candidates, with the candidate's boxes drawn.
+
+    ``boxes`` are manifest boxes (``bbox``, ``new`` and, for new objects, ``requested_bbox``; COCO
+    ``[x, y, w, h]`` in the image's pixels): the requested box in :data:`REQUESTED_BOX_RGB`, a new object's
+    re-fitted box in :data:`NEW_BOX_RGB`, a kept object's box in :data:`REAL_BOX_RGB`.
+    """
     small = cv2.resize(image, (max(1, image.shape[1] // 2), max(1, image.shape[0] // 2)), interpolation=cv2.INTER_AREA)
-    ok, data = cv2.imencode(".jpg", np.ascontiguousarray(small[:, :, ::-1]), [cv2.IMWRITE_JPEG_QUALITY, 85])
+    small = np.ascontiguousarray(small)
+    scale = (small.shape[1] / image.shape[1], small.shape[0] / image.shape[0])
+    for box in boxes:
+        if box.get("requested_bbox") is not None:
+            _draw_box(small, box["requested_bbox"], scale, REQUESTED_BOX_RGB)
+        _draw_box(small, box["bbox"], scale, NEW_BOX_RGB if box.get("new") else REAL_BOX_RGB)
+    # without chroma subsampling (4:4:4) a drawn 1 px box keeps its colour
+    params = [cv2.IMWRITE_JPEG_QUALITY, 85, cv2.IMWRITE_JPEG_SAMPLING_FACTOR, cv2.IMWRITE_JPEG_SAMPLING_FACTOR_444]
+    ok, data = cv2.imencode(".jpg", np.ascontiguousarray(small[:, :, ::-1]), params)
     if not ok:
         raise RunError("could not encode a JPEG thumbnail")
     return data.tobytes()
+
+
+def _draw_box(image: np.ndarray, box: Sequence[float], scale: tuple[float, float], colour: tuple) -> None:
+    x, y, w, h = box
+    top_left = (round(x * scale[0]), round(y * scale[1]))
+    bottom_right = (round((x + w) * scale[0]) - 1, round((y + h) * scale[1]) - 1)
+    cv2.rectangle(image, top_left, bottom_right, colour, 1, cv2.LINE_8)
 
 
 class RunFolder:
@@ -75,13 +106,27 @@ class RunFolder:
             stale.unlink(missing_ok=True)
         return folder
 
-    def _check_identity(self, identity: dict[str, Any]) -> None:
+    @classmethod
+    def inspect(cls, root: Path, identity: Mapping[str, Any]) -> set[int] | None:
+        """What :meth:`claim` would find, writing nothing: None for a new folder, else the committed chunks.
+
+        Raises
+        ------
+        RunError
+            As :meth:`claim`.
+        """
+        folder = cls(root)
+        folder._check_identity(dict(identity), write=False)
+        return folder.committed() if (folder.root / "run.json").exists() else None
+
+    def _check_identity(self, identity: dict[str, Any], *, write: bool = True) -> None:
         path = self.root / "run.json"
         if path.exists():
             try:
                 existing = json.loads(path.read_text(encoding="utf-8"))
             except (OSError, json.JSONDecodeError) as exc:
                 raise RunError(f"{path}: unreadable ({exc})", hint="delete the output folder and run again") from None
+            existing.pop(SUMMARY_KEY, None)
             if existing != identity:
                 keys = set(existing) | set(identity)
                 changed = sorted(k for k in keys if existing.get(k) != identity.get(k))
@@ -94,7 +139,7 @@ class RunFolder:
                 f"{self.root} exists and is not a rarefill run folder",
                 hint="choose an empty or new output folder (--out)",
             )
-        else:
+        elif write:
             write_json_atomic(path, identity, indent=2)
 
     def chunk_path(self, chunk: int) -> Path:
@@ -109,10 +154,17 @@ class RunFolder:
         write_bytes_atomic(self.root / "images" / name, encode_png(image))
         return f"images/{name}"
 
-    def write_reject(self, name: str, image: np.ndarray) -> str:
-        """Write a rejected candidate's thumbnail; returns its path relative to the run folder."""
-        write_bytes_atomic(self.root / "rejects" / name, encode_thumbnail(image))
+    def write_reject(self, name: str, image: np.ndarray, boxes: Sequence[Mapping[str, Any]] = ()) -> str:
+        """Write a rejected candidate's thumbnail with its boxes drawn; returns its path relative to the run folder."""
+        write_bytes_atomic(self.root / "rejects" / name, encode_thumbnail(image, boxes))
         return f"rejects/{name}"
+
+    def write_summary(self, summary: Mapping[str, Any]) -> None:
+        """Add a finished run's summary to ``run.json`` (replacing an earlier one)."""
+        path = self.root / "run.json"
+        identity = json.loads(path.read_text(encoding="utf-8"))
+        identity.pop(SUMMARY_KEY, None)
+        write_json_atomic(path, {**identity, SUMMARY_KEY: dict(summary)}, indent=2)
 
     def commit(self, chunk: int, jobs: Sequence[Mapping[str, Any]]) -> None:
         """Commit a chunk's job records (written last, after every image it names)."""

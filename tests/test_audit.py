@@ -299,4 +299,4 @@ def test_cli_audit_prints_the_table_and_refuses_bad_input(tmp_path):
     leak = cli.invoke(app, ["audit", str(run), "--real", str(SEED_SCENES / "train.json")])
     assert leak.exit_code == 2 and "not held out" in leak.stderr
     missing = cli.invoke(app, ["audit", str(tmp_path / "nowhere"), "--real", str(SEED_SCENES / "test.json")])
-    assert missing.exit_code == 1 and "not a finished rarefill run folder" in missing.stderr
+    assert missing.exit_code == 2 and "not a finished rarefill run folder" in missing.stderr  # bad input

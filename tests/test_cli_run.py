@@ -44,7 +44,7 @@ def _recipe(tmp_path: Path, model: Path, *, count: int = 3) -> Path:
 
 def test_run_happy_path_with_a_real_model(tmp_path, tiny_model):
     recipe = str(_recipe(tmp_path, tiny_model))
-    result = runner.invoke(app, ["run", recipe, "--limit", "2", "--out", str(tmp_path / "o")])
+    result = runner.invoke(app, ["run", recipe, "--limit", "2", "--out", str(tmp_path / "o"), "--allow-short"])
     assert result.exit_code == 0, result.output
     assert "of 2 wanted" in result.stdout and "labels:" in result.stdout
     # COCO's reference reader loads the labels; the manifest holds every attempt
@@ -80,7 +80,7 @@ def test_bad_shard_exits_2(tmp_path, tiny_model):
 
 def test_other_run_in_the_folder_exits_1(tmp_path, tiny_model):
     recipe = str(_recipe(tmp_path, tiny_model))
-    assert runner.invoke(app, ["run", recipe, "--limit", "1"]).exit_code == 0
+    assert runner.invoke(app, ["run", recipe, "--limit", "1", "--allow-short"]).exit_code == 0
     result = runner.invoke(app, ["run", recipe, "--limit", "2"])
     assert result.exit_code == 1 and "holds another run" in result.stderr
 
@@ -88,7 +88,7 @@ def test_other_run_in_the_folder_exits_1(tmp_path, tiny_model):
 def test_collect_refuses_an_incomplete_set_of_shards(tmp_path, tiny_model):
     recipe = str(_recipe(tmp_path, tiny_model, count=9))
     part = tmp_path / "p0"
-    assert runner.invoke(app, ["run", recipe, "--shard", "0/2", "--out", str(part)]).exit_code == 0
+    assert runner.invoke(app, ["run", recipe, "--shard", "0/2", "--out", str(part), "--allow-short"]).exit_code == 0
     result = runner.invoke(app, ["collect", str(part), "--out", str(tmp_path / "whole")])
     assert result.exit_code == 2 and "shard 1/2 missing" in result.stderr
 
@@ -98,7 +98,7 @@ def test_shard_auto_takes_the_slurm_array_task(tmp_path, tiny_model, monkeypatch
     monkeypatch.setenv("SLURM_ARRAY_TASK_ID", "1")
     monkeypatch.setenv("SLURM_ARRAY_TASK_COUNT", "2")
     recipe = str(_recipe(tmp_path, tiny_model, count=9))
-    result = runner.invoke(app, ["run", recipe, "--shard", "auto", "--out", str(tmp_path / "p1")])
+    result = runner.invoke(app, ["run", recipe, "--shard", "auto", "--out", str(tmp_path / "p1"), "--allow-short"])
     assert result.exit_code == 0, result.output
     assert "shard 1/2 (from SLURM_ARRAY_TASK_ID=1" in result.stderr
     assert json.loads((tmp_path / "p1" / "run.json").read_text())["shard"] == "1/2"

@@ -18,10 +18,11 @@ from PIL import Image
 from pipeline.dataset import load_dataset
 from pipeline.errors import ModelError
 from pipeline.generator import BACKGROUND, InpaintRequest, fit, load
+from pipeline.generator.batches import make_batch
 from pipeline.generator.examples import load_examples
 from pipeline.generator.model import DenoiserConfig, label_table, sampling_scheduler, training_scheduler
 from pipeline.generator.request import check_request
-from pipeline.generator.train import TrainSettings, _train_step, make_batch
+from pipeline.generator.train import TrainSettings, _train_step
 from pipeline.generator.verifier import crop_box, load_verifier
 from pipeline.generator.windows import (
     Window,
@@ -186,27 +187,34 @@ def test_cosine_schedule_matches_the_published_formula():
 def test_batches_hold_masked_objects_and_background(scenes):
     examples = load_examples(scenes)
     labels = label_table(examples.classes)
-    images, masks, ids = make_batch(
-        examples, labels, np.random.default_rng(0), batch_size=32, window=32, background_share=0.3
-    )
+    batch = make_batch(examples, labels, np.random.default_rng(0), batch_size=32, window=32, background_share=0.3)
+    images, masks, ids = batch.images, batch.masks, batch.label_ids
     assert images.shape == (32, 3, 32, 32) and masks.shape == (32, 1, 32, 32)
     assert images.min() >= -1 and images.max() <= 1
     assert set(ids.tolist()) == {1, 2, 3}
     assert (masks.sum(axis=(1, 2, 3)) > 0).all()
 
 
-def test_loss_falls_on_a_fixed_batch(scenes):
+@pytest.mark.parametrize("exemplar", [True, False])
+def test_loss_falls_on_a_fixed_batch(scenes, exemplar):
+    from dataclasses import replace
+
+    from pipeline.generator.batches import object_silhouettes
     from pipeline.generator.model import build_unet
 
+    config = replace(TINY, exemplar=exemplar)
     examples = load_examples(scenes)
     labels = label_table(examples.classes)
+    silhouettes = object_silhouettes(examples) if exemplar else None
     torch.manual_seed(0)
-    unet = build_unet(TINY, len(labels))
+    unet = build_unet(config, len(labels))
+    assert unet.config.in_channels == (11 if exemplar else 7)
     optimizer = torch.optim.AdamW(unet.parameters(), lr=2e-3)
     alphas = training_scheduler().alphas_cumprod.float()
-    settings = TrainSettings(drop_label=0.0, use_bf16=False)
+    settings = TrainSettings(drop_label=0.0, use_bf16=False, exemplar_share=1.0, background_share=0.0)
     # The same (seed, step) gives the same batch, noise and timesteps: a fixed batch.
-    losses = [_train_step(unet, optimizer, examples, labels, alphas, 0, 0, 8, TINY, settings) for _ in range(30)]
+    step = (unet, optimizer, examples, labels, alphas, 0, 0, 8, config, settings, silhouettes)
+    losses = [_train_step(*step) for _ in range(30)]
     assert np.mean(losses[-5:]) < 0.7 * np.mean(losses[:5])
 
 
@@ -483,6 +491,13 @@ def test_own_diffusers_pipeline_loads_offline_and_inpaints(tmp_path, monkeypatch
         assert not np.array_equal(frame[request.mask], request.image[request.mask])
     again = generator.inpaint(requests[:1], steps=2, guidance=1.0)[0]
     assert np.abs(again.astype(int) - frames[0]).max() <= 1
+    # A text-prompted pipeline has no exemplar inputs: it says so and refuses exemplar requests.
+    assert generator.accepts_exemplar is False
+    placed = dataclasses.replace(
+        requests[0], exemplar=requests[0].image.copy(), exemplar_alpha=requests[0].mask.astype(np.float32)
+    )
+    with pytest.raises(ValueError, match="does not take exemplars"):
+        generator.inpaint([placed], steps=2, guidance=1.0)
 
 
 # --------------------------------------------------------------------------------------------------

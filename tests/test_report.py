@@ -526,7 +526,7 @@ def test_cli_writes_the_report_and_refuses_bad_options(run_dir, tmp_path):
     assert lonely.exit_code == 2
     assert "--real-images needs --real" in lonely.output
     missing = runner.invoke(app, ["report", str(tmp_path / "nowhere")])
-    assert missing.exit_code == 1
+    assert missing.exit_code == 2  # a missing run folder is bad input
     assert "not a finished rarefill run folder" in missing.output
 
 

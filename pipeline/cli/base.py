@@ -17,7 +17,7 @@ import typer
 from rich.console import Console
 
 from .. import __version__
-from ..errors import RarefillError
+from ..errors import EXIT_FAILURE, RarefillError
 
 app = typer.Typer(
     name="rarefill",
@@ -63,6 +63,8 @@ def reports_errors(command: F) -> F:
                 if exc.hint:
                     err.print(f"hint: {exc.hint}", markup=False)
                 raise typer.Exit(exc.exit_code) from None
+            except (typer.Exit, typer.Abort):
+                raise  # a command's own exit code (e.g. 3 for a run that finished short)
             except KeyboardInterrupt:
                 err.print("interrupted", markup=False)
                 raise typer.Exit(130) from None
@@ -71,7 +73,7 @@ def reports_errors(command: F) -> F:
                     raise
                 err.print(f"error: internal failure: {type(exc).__name__}: {exc}", markup=False)
                 err.print("hint: run again with --debug for the traceback and report it", markup=False)
-                raise typer.Exit(1) from None
+                raise typer.Exit(EXIT_FAILURE) from None
             finally:
                 for item in caught:
                     if not issubclass(item.category, (DeprecationWarning, FutureWarning)):

@@ -29,14 +29,38 @@ def fit_command(
     steps: Annotated[int | None, typer.Option("--steps", min=1, help="Train until this many steps in total.")] = None,
     seed: Annotated[int, typer.Option("--seed", min=0, help="Seeds the initial weights and every batch.")] = 0,
     batch_size: Annotated[int, typer.Option("--batch-size", min=1, help="Windows per training step.")] = 16,
+    init: Annotated[
+        Path | None,
+        typer.Option(
+            "--init",
+            help="Warm start from this model folder (same classes and size); a model without exemplar "
+            "channels gains them at zero weight, so it keeps what it drew and training is short.",
+        ),
+    ] = None,
+    exemplar: Annotated[
+        bool,
+        typer.Option(
+            "--exemplar/--no-exemplar",
+            help="Train the exemplar-conditioned model (default: it repaints a placed real instance in "
+            "context and also draws from the class label alone) or the label-only kind of older versions.",
+        ),
+    ] = True,
 ) -> None:
     """Train the domain generator (inpainting diffusion model + object verifier) on CPU.
+
+    The model learns by self-supervision on your own images: a real object is masked (its silhouette
+    grown by a few pixels plus a shadow band under it), an altered copy of it (colour, brightness,
+    blur, a few per cent of shift and scale) is given as the exemplar, and the model learns to redraw
+    the original in its scene. Half the object windows get no exemplar and background windows are
+    mixed in, so the same model also draws objects from their class alone and fills backgrounds.
 
     Two phases, each with its own progress bar: the object verifier (a fixed number of steps, skipped
     when the folder already holds one for this data), then the denoiser (--steps, or what is left of
     --minutes).
 
     Example: rarefill fit seed_scenes/train.json --out models/default --minutes 40
+
+    Warm start: rarefill fit seed_scenes/train.json --out models/new --init models/default --minutes 30
     """
     import sys
     import time
@@ -46,6 +70,7 @@ def fit_command(
     from ..dataset import load_dataset
     from ..errors import UsageError
     from ..generator import fit
+    from ..generator.model import DenoiserConfig
 
     if (minutes is None) == (steps is None):
         raise UsageError("give exactly one of --minutes and --steps")
@@ -73,6 +98,8 @@ def fit_command(
             batch_size=batch_size,
             progress=report,
             command=["rarefill", *sys.argv[1:]],
+            config=DenoiserConfig(exemplar=exemplar),
+            init=init,
         )
     resumed = f", resumed at step {result.resumed_from}" if result.resumed_from else ""
     stdout().print(

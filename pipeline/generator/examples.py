@@ -10,7 +10,8 @@ from __future__ import annotations
 import hashlib
 import json
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 
@@ -21,11 +22,13 @@ from .request import BACKGROUND
 
 @dataclass(frozen=True)
 class ObjectRef:
-    """One labelled object: its scene (index into ``Examples.images``), box and class name."""
+    """One labelled object: its scene (index into ``Examples.images``), box, class name and COCO
+    segmentation (``None`` when the data set gives none)."""
 
     scene: int
     box: tuple[float, float, float, float]
     label: str
+    segmentation: Any = field(default=None, compare=False, repr=False)
 
 
 @dataclass(frozen=True)
@@ -117,7 +120,9 @@ def load_examples(dataset: Dataset) -> Examples:
         occupied.append(np.array([a.bbox for a in scene.annotations], dtype=np.float64).reshape(-1, 4))
         for ann in scene.annotations:
             if not ann.iscrowd and ann.bbox[2] >= 2 and ann.bbox[3] >= 2:
-                objects[names[ann.category_id]].append(ObjectRef(index, ann.bbox, names[ann.category_id]))
+                objects[names[ann.category_id]].append(
+                    ObjectRef(index, ann.bbox, names[ann.category_id], ann.segmentation)
+                )
     if not any(objects.values()):
         raise DatasetError(source, "annotations", "no usable (non-crowd, at least 2x2 px) object to train on")
     return Examples(

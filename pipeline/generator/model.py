@@ -1,7 +1,8 @@
 """The class-conditional inpainting denoiser: its architecture, label table and noise schedules.
 
-Input channels: noisy window (3) + masked window (3, zero inside the mask) + mask (1). Output: the
-v-prediction (3). One class embedding per label, plus a null label for classifier-free guidance.
+Input channels: noisy window (3) + masked window (3, zero inside the mask) + mask (1), and for an
+exemplar-conditioned model (the default) exemplar composite (3) + exemplar alpha (1), see :mod:`.exemplar`.
+Output: the v-prediction (3). One class embedding per label, plus a null label for classifier-free guidance.
 """
 
 from __future__ import annotations
@@ -9,9 +10,11 @@ from __future__ import annotations
 from collections.abc import Sequence
 from dataclasses import asdict, dataclass
 
+import torch
 from diffusers import DDPMScheduler, DPMSolverMultistepScheduler, UNet2DModel
 from diffusers.utils import is_accelerate_available
 
+from .exemplar import EXEMPLAR_IN_CHANNELS, PLAIN_IN_CHANNELS
 from .request import BACKGROUND
 
 FORMAT = "rarefill-inpaint"
@@ -24,8 +27,6 @@ MODEL_INDEX = "model_index.json"
 
 NULL_LABEL = 0
 """Class-embedding index of the dropped condition (classifier-free guidance)."""
-
-IN_CHANNELS = 7
 
 
 def model_loading_options() -> dict[str, bool]:
@@ -48,6 +49,12 @@ class DenoiserConfig:
     block_out_channels: tuple[int, ...] = (32, 64, 64)
     layers_per_block: int = 1
     norm_num_groups: int = 8
+    exemplar: bool = True
+    """Exemplar channels (11 inputs) or the plain class-conditional inpainter (7 inputs)."""
+
+    @property
+    def in_channels(self) -> int:
+        return EXEMPLAR_IN_CHANNELS if self.exemplar else PLAIN_IN_CHANNELS
 
     def __post_init__(self) -> None:
         levels = len(self.block_out_channels)
@@ -79,7 +86,7 @@ def build_unet(config: DenoiserConfig, n_labels: int) -> UNet2DModel:
     up = ("AttnUpBlock2D",) + ("UpBlock2D",) * (levels - 1)
     return UNet2DModel(
         sample_size=config.window,
-        in_channels=IN_CHANNELS,
+        in_channels=config.in_channels,
         out_channels=3,
         block_out_channels=tuple(config.block_out_channels),
         layers_per_block=config.layers_per_block,
@@ -89,6 +96,47 @@ def build_unet(config: DenoiserConfig, n_labels: int) -> UNet2DModel:
         attention_head_dim=config.block_out_channels[-1] // 2,
         num_class_embeds=n_labels,
     )
+
+
+def same_architecture(config: DenoiserConfig, unet: UNet2DModel) -> list[str]:
+    """The fields (other than the input channels) in which ``unet`` differs from ``config``; empty if none."""
+    ours = build_unet(config, int(unet.config.num_class_embeds)).config
+    keys = ("sample_size", "block_out_channels", "layers_per_block", "down_block_types", "up_block_types")
+    keys += ("norm_num_groups", "attention_head_dim", "out_channels")
+    return [k for k in keys if tuple(_listify(ours[k])) != tuple(_listify(unet.config[k]))]
+
+
+def _listify(value):
+    return value if isinstance(value, (list, tuple)) else [value]
+
+
+@torch.no_grad()
+def widen_from(unet: UNet2DModel, source: UNet2DModel) -> None:
+    """Copy ``source``'s weights into ``unet`` in place (a warm start); input channels ``unet`` has beyond
+    ``source``'s get zero weights, so at first the new inputs change nothing and the model draws what the
+    source drew.
+
+    Raises
+    ------
+    ValueError
+        The two differ in anything but the number of input channels, or ``source`` has more of them.
+    """
+    state = source.state_dict()
+    own = unet.state_dict()
+    if set(state) != set(own):
+        raise ValueError("the source model has other layers")
+    weight = state["conv_in.weight"]
+    if weight.shape[1] > own["conv_in.weight"].shape[1]:
+        raise ValueError(
+            f"the source model has {weight.shape[1]} input channels, more than {own['conv_in.weight'].shape[1]}"
+        )
+    wide = torch.zeros_like(own["conv_in.weight"])
+    wide[:, : weight.shape[1]] = weight
+    state = {**state, "conv_in.weight": wide}
+    for key, value in state.items():
+        if value.shape != own[key].shape:
+            raise ValueError(f"{key}: shape {tuple(value.shape)} != {tuple(own[key].shape)}")
+    unet.load_state_dict(state)
 
 
 def training_scheduler() -> DDPMScheduler:

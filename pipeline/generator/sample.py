@@ -1,22 +1,37 @@
-"""Sampling from our own trained denoiser: load a ``rarefill fit`` folder and inpaint batches of windows."""
+"""Sampling from our own trained denoiser: load a ``rarefill fit`` folder and inpaint batches of windows.
+
+A request that carries an exemplar starts, by default, from the window of its exemplar frame noised to a
+part ``strength`` of the schedule (SDEdit), not from pure noise: the exemplar already holds the object's
+shape and most of its colour, so a few solver steps suffice to fit it to the scene.
+
+References
+----------
+Meng et al., "SDEdit: Guided Image Synthesis and Editing with Stochastic Differential Equations", ICLR 2022.
+"""
 
 from __future__ import annotations
 
 import hashlib
 import json
+import math
 import os
 from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
 
+import cv2
 import numpy as np
 import torch
 from diffusers import DDPMScheduler, UNet2DModel
 
 from ..errors import ModelError
+from .exemplar import EXEMPLAR_IN_CHANNELS, PLAIN_IN_CHANNELS, conditioning
 from .model import FORMAT, FORMAT_VERSION, METADATA, NULL_LABEL, model_loading_options, sampling_scheduler
 from .request import InpaintRequest, check_request
-from .windows import context_window, crop_window, paste_window, window_mask
+from .windows import Window, context_window, crop_window, paste_window, window_mask
+
+EXEMPLAR_STRENGTH = 0.5
+"""Default share of the noise schedule an exemplar request is noised to before denoising (1 = pure noise)."""
 
 _REQUIRED = (
     "rarefill_model.json",
@@ -32,7 +47,8 @@ class DiffusionGenerator:
     Parameters
     ----------
     unet : UNet2DModel
-        The denoiser (7 input channels, class embeddings indexed by ``labels``).
+        The denoiser (7 input channels, or 11 with exemplar channels; class embeddings indexed by
+        ``labels``). ``accepts_exemplar`` is true for an 11-channel one.
     train_scheduler_config : dict
         Config of the training noise schedule; sampling runs DPM-Solver++ on it.
     labels : sequence of str
@@ -44,8 +60,6 @@ class DiffusionGenerator:
     use_bf16 : bool
         Run the UNet under bfloat16 autocast (faster on CPUs with native bf16).
     """
-
-    accepts_exemplar = False
 
     def __init__(
         self,
@@ -66,6 +80,12 @@ class DiffusionGenerator:
         self.folder = folder
         self.folder_hash = folder_hash
         self.use_bf16 = use_bf16
+        channels = int(unet.config.in_channels)
+        if channels not in (PLAIN_IN_CHANNELS, EXEMPLAR_IN_CHANNELS):
+            raise ValueError(
+                f"unet has {channels} input channels; expected {PLAIN_IN_CHANNELS} or {EXEMPLAR_IN_CHANNELS}"
+            )
+        self.accepts_exemplar = channels == EXEMPLAR_IN_CHANNELS
 
     def info(self) -> dict[str, Any]:
         """Provenance of this generator."""
@@ -76,6 +96,7 @@ class DiffusionGenerator:
             "folder_sha256": self.folder_hash,
             "classes": list(self.classes),
             "window": self.window,
+            "accepts_exemplar": self.accepts_exemplar,
         }
 
     def inpaint(
@@ -86,25 +107,34 @@ class DiffusionGenerator:
         guidance: float = 1.0,
         batch_size: int = 16,
         feather_px: float = 2.0,
+        strength: float = EXEMPLAR_STRENGTH,
     ) -> list[np.ndarray]:
         """Inpaint each request's masked pixels with its label; windows are denoised in batches.
 
         Parameters
         ----------
         requests : sequence of InpaintRequest
+            A request may carry an exemplar when ``accepts_exemplar`` is true; its ``box`` should be
+            its mask's bounding box (the window is about twice that, as in training).
         steps : int
-            DPM-Solver++ steps (10-20 is enough).
+            DPM-Solver++ steps actually run per window (10-20 from noise; 4-8 from an exemplar).
         guidance : float
             Classifier-free guidance scale; 1 means the conditional model alone (one pass per step).
         batch_size : int
             Windows per UNet call.
         feather_px : float
             Width of the alpha ramp inside the mask's edge.
+        strength : float in (0, 1]
+            Exemplar requests only: the denoising starts from the exemplar window noised to this share
+            of the schedule (``steps`` solver steps over the last ``strength`` of a schedule of
+            ``ceil(steps / strength)``); 1 starts from pure noise. Requests without an exemplar always
+            start from pure noise.
 
         Returns
         -------
         list of (H, W, 3) uint8 ndarray
             One full frame per request; pixels outside ``request.mask`` are bit-identical to the input.
+            Each depends only on its own request (seeded noise), not on its batch-mates.
         """
         # 1. check inputs
         if not isinstance(steps, int) or steps < 1:
@@ -113,45 +143,104 @@ class DiffusionGenerator:
             raise ValueError(f"guidance must be >= 1, got {guidance!r}")
         if batch_size < 1:
             raise ValueError(f"batch_size must be >= 1, got {batch_size}")
+        if not 0.0 < strength <= 1.0:
+            raise ValueError(f"strength must lie in (0, 1], got {strength!r}")
         for i, request in enumerate(requests):
-            check_request(request, i, self.classes)
-
-        # 2. crop the context windows
-        windows = [context_window(r.box, r.image.shape[:2]) for r in requests]
-        results: list[np.ndarray] = []
-        for start in range(0, len(requests), batch_size):
-            chunk = list(range(start, min(start + batch_size, len(requests))))
-            known = np.stack([crop_window(requests[i].image, windows[i], self.window) for i in chunk])
-            masks = np.stack([window_mask(requests[i].mask, windows[i], self.window) for i in chunk])
-            labels = [self.labels.index(requests[i].label) for i in chunk]
-            seeds = [int(requests[i].seed) for i in chunk]
-            # 3. denoise
-            patches = self._denoise(known, masks, labels, seeds, steps=steps, guidance=guidance)
-            # 4. blend back inside the masks
-            for j, i in enumerate(chunk):
-                results.append(
-                    paste_window(requests[i].image, requests[i].mask, windows[i], patches[j], feather_px=feather_px)
+            if request.exemplar is not None and not self.accepts_exemplar:
+                name = self.folder.name if self.folder else "this model"
+                raise ValueError(
+                    f"requests[{i}].exemplar: {name} has no exemplar channels (a 7-channel model); "
+                    "retrain it with `rarefill fit`, or ask for appearance 'generated'"
                 )
+            check_request(request, i, self.classes, accepts_exemplar=self.accepts_exemplar)
+
+        # 2. windows; exemplar requests and plain ones follow different schedules, so they batch apart
+        windows = [context_window(r.box, r.image.shape[:2]) for r in requests]
+        results: list[np.ndarray | None] = [None] * len(requests)
+        groups = (
+            [i for i, r in enumerate(requests) if r.exemplar is None],
+            [i for i, r in enumerate(requests) if r.exemplar is not None],
+        )
+        for group, group_strength in zip(groups, (1.0, strength), strict=True):
+            for start in range(0, len(group), batch_size):
+                chunk = group[start : start + batch_size]
+                # 3. denoise
+                patches = self._denoise(
+                    [requests[i] for i in chunk],
+                    [windows[i] for i in chunk],
+                    steps=steps,
+                    guidance=guidance,
+                    strength=group_strength,
+                )
+                # 4. blend back inside the masks
+                for j, i in enumerate(chunk):
+                    results[i] = paste_window(
+                        requests[i].image, requests[i].mask, windows[i], patches[j], feather_px=feather_px
+                    )
         return results
+
+    def _inputs(self, requests: Sequence[InpaintRequest], windows: Sequence[Window]):
+        """Model-size tensors of a chunk: known window, mask, exemplar window and alpha (zeros if none)."""
+        size = self.window
+
+        def tensor(arrays: list[np.ndarray]) -> torch.Tensor:
+            return torch.from_numpy(np.ascontiguousarray(np.stack(arrays).transpose(0, 3, 1, 2)))
+
+        known = tensor([crop_window(r.image, w, size) for r, w in zip(requests, windows, strict=True)])
+        masks = np.stack([window_mask(r.mask, w, size) for r, w in zip(requests, windows, strict=True)])
+        mask = torch.from_numpy(masks[:, None].astype(np.float32))
+        known = known.float() / 127.5 - 1.0
+        if not self.accepts_exemplar:
+            return known, mask, None, None
+        shown = tensor(
+            [
+                crop_window(r.image if r.exemplar is None else r.exemplar, w, size)
+                for r, w in zip(requests, windows, strict=True)
+            ]
+        )
+        alphas = [
+            np.zeros((size, size), np.float32)
+            if r.exemplar_alpha is None
+            else crop_window(r.exemplar_alpha, w, size, border=cv2.BORDER_CONSTANT)
+            for r, w in zip(requests, windows, strict=True)
+        ]
+        alpha = torch.from_numpy(np.stack(alphas)[:, None])
+        return known, mask, shown.float() / 127.5 - 1.0, alpha
 
     @torch.no_grad()
     def _denoise(
-        self, known: np.ndarray, masks: np.ndarray, labels: list[int], seeds: list[int], *, steps: int, guidance: float
+        self,
+        requests: Sequence[InpaintRequest],
+        windows: Sequence[Window],
+        *,
+        steps: int,
+        guidance: float,
+        strength: float,
     ) -> np.ndarray:
         size = self.window
-        image = torch.from_numpy(np.ascontiguousarray(known.transpose(0, 3, 1, 2))).float() / 127.5 - 1.0
-        mask = torch.from_numpy(masks[:, None].astype(np.float32))
-        condition = torch.cat([image * (1 - mask), mask], dim=1)
+        known, mask, shown, alpha = self._inputs(requests, windows)
+        condition = conditioning(known, mask, shown, alpha) if self.accepts_exemplar else conditioning(known, mask)
         # Each request's noise comes from its own seed, so its result does not depend on its batch-mates.
-        x = torch.stack([torch.randn((3, size, size), generator=torch.Generator().manual_seed(s)) for s in seeds])
-        class_ids = torch.tensor(labels, dtype=torch.long)
+        noise = torch.stack(
+            [torch.randn((3, size, size), generator=torch.Generator().manual_seed(int(r.seed))) for r in requests]
+        )
+        class_ids = torch.tensor([self.labels.index(r.label) for r in requests], dtype=torch.long)
         if guidance != 1.0:
             condition = torch.cat([condition, condition])
             class_ids = torch.cat([class_ids, torch.full_like(class_ids, NULL_LABEL)])
         scheduler = sampling_scheduler(self.train_scheduler_config)
-        scheduler.set_timesteps(steps)
-        x = x * scheduler.init_noise_sigma
-        for t in scheduler.timesteps:
+        if strength < 1.0:
+            total = max(steps, math.ceil(steps / strength))
+            scheduler.set_timesteps(total)
+            scheduler.set_begin_index(total - steps)
+            timesteps = scheduler.timesteps[total - steps :]
+            # Outside the exemplar's window the start is the known scene (the model's output there is not used).
+            x = scheduler.add_noise(shown, noise, timesteps[:1])
+        else:
+            scheduler.set_timesteps(steps)
+            timesteps = scheduler.timesteps
+            x = noise * scheduler.init_noise_sigma
+        for t in timesteps:
             model_x = scheduler.scale_model_input(x, t)
             if guidance != 1.0:
                 model_x = torch.cat([model_x, model_x])

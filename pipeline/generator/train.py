@@ -33,7 +33,9 @@ from .. import __version__
 from ..dataset import Dataset
 from ..errors import ModelError
 from ..files import write_bytes_atomic, write_json_atomic
-from .examples import Examples, dataset_hash, load_examples
+from .batches import make_batch, object_silhouettes
+from .examples import dataset_hash, load_examples
+from .exemplar import conditioning
 from .model import (
     FORMAT,
     FORMAT_VERSION,
@@ -42,12 +44,12 @@ from .model import (
     DenoiserConfig,
     build_unet,
     label_table,
+    same_architecture,
     training_scheduler,
+    widen_from,
 )
 from .progress import FitProgress
-from .request import BACKGROUND
 from .verifier import VERIFIER_JSON, fit_verifier, save_verifier
-from .windows import box_mask, context_window, crop_window, object_mask_box, window_mask
 
 CHECKPOINT = "checkpoint.pt"
 
@@ -58,19 +60,22 @@ class TrainSettings:
 
     ``mask_weight``/``outside_weight``: loss weight inside and outside the mask (the model only has to
     draw the masked part; the outside keeps some weight so the fill continues its surroundings).
+    ``exemplar_share``: share of the object windows given an exemplar (the rest are drawn from the
+    label alone, so one model serves both appearances); unused by a model without exemplar channels.
     """
 
     learning_rate: float = 6e-4
-    warmup_steps: int = 100
-    ema_decay: float = 0.998
+    warmup_steps: int = 50
+    ema_decay: float = 0.995
     drop_label: float = 0.1
-    background_share: float = 0.25
+    background_share: float = 0.2
     mask_margin: tuple[float, float] = (0.06, 0.18)
     mask_weight: float = 1.0
     outside_weight: float = 0.1
     checkpoint_every: int = 200
     verifier_steps: int = 1500
     use_bf16: bool = True
+    exemplar_share: float = 0.6
 
 
 @dataclass(frozen=True)
@@ -82,75 +87,6 @@ class FitResult:
     seconds: float
     final_loss: float
     resumed_from: int
-
-
-# --------------------------------------------------------------------------------------------------
-# batches
-
-
-def make_batch(
-    examples: Examples,
-    labels: Sequence[str],
-    rng: np.random.Generator,
-    *,
-    batch_size: int,
-    window: int,
-    background_share: float,
-    mask_margin: tuple[float, float] = (0.06, 0.18),
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """One training batch of windows.
-
-    Each window is masked the way the insert stage masks a new object (:func:`object_mask_box`): the
-    box grown by a margin drawn from ``mask_margin`` (share of its width on each side, of its height on
-    top) and 2 px below, so the model learns to draw an object standing at the bottom centre of its mask
-    with some room around it, not one that fills the mask. The window is centred on the mask's box, as
-    at sampling time, with a little jitter in position and context.
-
-    Returns
-    -------
-    images : (B, 3, S, S) float32 ndarray in [-1, 1]
-    masks : (B, 1, S, S) float32 ndarray of 0/1
-    label_ids : (B,) int64 ndarray
-        Index into ``labels`` (before the classifier-free-guidance drop).
-    """
-    images = np.empty((batch_size, 3, window, window), np.float32)
-    masks = np.empty((batch_size, 1, window, window), np.float32)
-    label_ids = np.empty(batch_size, np.int64)
-    for i in range(batch_size):
-        if rng.random() < background_share:
-            scene, box = examples.sample_background_box(rng)
-            label = BACKGROUND
-        else:
-            ref = examples.sample_object(rng)
-            scene, box, label = ref.scene, ref.box, ref.label
-        image = examples.images[scene]
-        mask = box_mask(image.shape[:2], object_mask_box(box, margin=rng.uniform(*mask_margin)))
-        mask_box = _bounding_box(mask)
-        mx, my, mw, mh = mask_box
-        side = max(mw, mh)
-        shifted = (mx + rng.uniform(-0.08, 0.08) * side, my + rng.uniform(-0.08, 0.08) * side, mw, mh)
-        win = context_window(shifted, image.shape[:2], scale=rng.uniform(1.8, 2.3))
-        if not _contains(win, mask_box):
-            win = context_window(mask_box, image.shape[:2])
-        crop = crop_window(image, win, window)
-        crop_mask = window_mask(mask, win, window)
-        if rng.random() < 0.5:
-            crop, crop_mask = crop[:, ::-1], crop_mask[:, ::-1]
-        images[i] = crop.transpose(2, 0, 1).astype(np.float32) / 127.5 - 1.0
-        masks[i, 0] = crop_mask
-        label_ids[i] = labels.index(label)
-    return images, masks, label_ids
-
-
-def _bounding_box(mask: np.ndarray) -> tuple[float, float, float, float]:
-    rows = np.flatnonzero(mask.any(axis=1))
-    cols = np.flatnonzero(mask.any(axis=0))
-    return (float(cols[0]), float(rows[0]), float(cols[-1] + 1 - cols[0]), float(rows[-1] + 1 - rows[0]))
-
-
-def _contains(win, box) -> bool:
-    x, y, w, h = box
-    return win.x0 <= x and win.y0 <= y and x + w <= win.x0 + win.size and y + h <= win.y0 + win.size
 
 
 # --------------------------------------------------------------------------------------------------
@@ -169,6 +105,7 @@ def fit(
     config: DenoiserConfig | None = None,
     settings: TrainSettings | None = None,
     command: Sequence[str] | None = None,
+    init: str | os.PathLike[str] | None = None,
 ) -> FitResult:
     """Train (or resume training) the inpainting denoiser and the verifier on ``dataset``.
 
@@ -195,6 +132,11 @@ def fit(
         Model size and optimisation settings (defaults: :class:`DenoiserConfig`, :class:`TrainSettings`).
     command : sequence of str, optional
         The command line that started this, recorded in the metadata.
+    init : path, optional
+        Warm start: a model folder written by ``fit`` with the same classes and architecture (it may
+        lack the exemplar channels; those then start at zero weight, see
+        :func:`.model.widen_from`). Its name, hash, steps and command are recorded in the metadata.
+        Ignored when resuming from a checkpoint (which already holds the warm-started weights).
 
     Returns
     -------
@@ -205,7 +147,8 @@ def fit(
     ValueError
         Bad ``steps``, ``minutes``, ``seed`` or ``batch_size``.
     ModelError
-        ``out_dir`` holds a checkpoint of other data, classes, size or seed.
+        ``out_dir`` holds a checkpoint of other data, classes, size, seed or start; ``init`` is not a
+        usable model folder for these classes and this size.
     DatasetError
         The data set has no usable images or objects.
 
@@ -239,13 +182,17 @@ def fit(
     with torch.random.fork_rng():
         torch.manual_seed(seed)
         unet = build_unet(config, len(labels))
+    start = _warm_start(unet, Path(init), labels, config) if init is not None else None
     ema = copy.deepcopy(unet).requires_grad_(False)
     optimizer = torch.optim.AdamW(unet.parameters(), lr=settings.learning_rate, weight_decay=0.0)
     identity = {"data_hash": data_hash, "labels": list(labels), "config": config.to_dict(), "seed": seed}
+    if start is not None:
+        identity["init_sha256"] = start["sha256"]
     step, loss_value, seconds_before = _resume(out / CHECKPOINT, identity, unet, ema, optimizer)
     resumed_from = step
     scheduler = training_scheduler()
     alphas = scheduler.alphas_cumprod.float()
+    silhouettes = object_silhouettes(examples) if config.exemplar and settings.exemplar_share > 0 else None
 
     # 4. the verifier first (retrained only when missing or made from other data): a time budget covers
     #    both phases, so the denoiser trains for what the verifier leaves of it
@@ -262,7 +209,9 @@ def fit(
         lr = settings.learning_rate * min(1.0, (step + 1) / settings.warmup_steps)
         for group in optimizer.param_groups:
             group["lr"] = lr
-        loss_value = _train_step(unet, optimizer, examples, labels, alphas, seed, step, batch_size, config, settings)
+        loss_value = _train_step(
+            unet, optimizer, examples, labels, alphas, seed, step, batch_size, config, settings, silhouettes
+        )
         step += 1
         _update_ema(ema, unet, min(settings.ema_decay, (1 + step) / (10 + step)))
         if progress is not None:
@@ -275,7 +224,14 @@ def fit(
 
     # 6. export the EMA weights as a diffusers folder, metadata last: it marks the folder complete
     history = _history(out / METADATA, data_hash) if resumed_from else []
-    history.append({"command": list(command) if command is not None else None, "steps": [resumed_from, step]})
+    entry = {"command": list(command) if command is not None else None, "steps": [resumed_from, step]}
+    if start is not None and not resumed_from:
+        entry["init"] = start
+    history.append(entry)
+    if not resumed_from:
+        init_record = start
+    else:
+        init_record = _previous_init(out / METADATA)
     (out / METADATA).unlink(missing_ok=True)
     _replace_dir(out / "unet", lambda tmp: ema.save_pretrained(tmp, safe_serialization=True))
     _replace_dir(out / "scheduler", lambda tmp: scheduler.save_pretrained(tmp))
@@ -291,6 +247,7 @@ def fit(
         "data_source": str(dataset.source) if dataset.source else None,
         "command": list(command) if command is not None else None,
         "history": history,
+        "init": init_record,
         "seed": seed,
         "steps_done": step,
         "final_loss": loss_value,
@@ -314,9 +271,11 @@ def _done(step: int, steps: int | None, minutes: float | None, started: float) -
     return time.monotonic() - started >= minutes * 60.0
 
 
-def _train_step(unet, optimizer, examples, labels, alphas, seed, step, batch_size, config, settings) -> float:
+def _train_step(
+    unet, optimizer, examples, labels, alphas, seed, step, batch_size, config, settings, silhouettes=None
+) -> float:
     rng = np.random.default_rng([seed, step])
-    images, masks, label_ids = make_batch(
+    batch = make_batch(
         examples,
         labels,
         rng,
@@ -324,19 +283,26 @@ def _train_step(unet, optimizer, examples, labels, alphas, seed, step, batch_siz
         window=config.window,
         background_share=settings.background_share,
         mask_margin=settings.mask_margin,
+        exemplar_share=settings.exemplar_share if config.exemplar else 0.0,
+        silhouettes=silhouettes,
     )
+    label_ids = batch.label_ids
     drop = rng.random(batch_size) < settings.drop_label
     label_ids[drop] = NULL_LABEL
     noise_gen = torch.Generator().manual_seed(int(rng.integers(2**62)))
-    x0 = torch.from_numpy(images)
-    mask = torch.from_numpy(masks)
+    x0 = torch.from_numpy(batch.images)
+    mask = torch.from_numpy(batch.masks)
     noise = torch.randn(x0.shape, generator=noise_gen)
     t = torch.randint(0, len(alphas), (batch_size,), generator=noise_gen)
     a = alphas[t].sqrt().view(-1, 1, 1, 1)
     s = (1 - alphas[t]).sqrt().view(-1, 1, 1, 1)
     noisy = a * x0 + s * noise
     target = a * noise - s * x0  # v-prediction (Salimans & Ho 2022)
-    model_in = torch.cat([noisy, x0 * (1 - mask), mask], dim=1)
+    if config.exemplar:
+        condition = conditioning(x0, mask, torch.from_numpy(batch.exemplars), torch.from_numpy(batch.alphas))
+    else:
+        condition = conditioning(x0, mask)
+    model_in = torch.cat([noisy, condition], dim=1)
     with torch.autocast("cpu", dtype=torch.bfloat16, enabled=settings.use_bf16):
         pred = unet(model_in, t, class_labels=torch.from_numpy(label_ids)).sample
     weight = settings.outside_weight + (settings.mask_weight - settings.outside_weight) * mask
@@ -399,6 +365,41 @@ def _history(metadata: Path, data_hash: str) -> list[dict]:
     if "history" in previous:
         return list(previous["history"])
     return [{"command": previous.get("command"), "steps": [0, previous.get("steps_done")]}]
+
+
+def _warm_start(unet, folder: Path, labels: Sequence[str], config: DenoiserConfig) -> dict:
+    """Copy a trained folder's weights into ``unet``; return what to record about that folder."""
+    from .sample import load_trained  # sample.py imports nothing of training; keep it that way round
+
+    source = load_trained(folder, use_bf16=False)
+    if tuple(source.labels) != tuple(labels):
+        raise ModelError(
+            f"{folder}: --init model has labels {list(source.labels)}, this data set {list(labels)}",
+            hint="warm-start only from a model trained on the same classes",
+        )
+    differing = same_architecture(config, source.unet)
+    if differing:
+        raise ModelError(f"{folder}: --init model differs in {', '.join(differing)} from the model to train")
+    try:
+        widen_from(unet, source.unet)
+    except ValueError as exc:
+        raise ModelError(f"{folder}: --init model cannot be copied ({exc})") from None
+    meta = json.loads((folder / METADATA).read_text(encoding="utf-8"))
+    return {
+        "folder": folder.name,
+        "sha256": source.folder_hash,
+        "in_channels": int(source.unet.config.in_channels),
+        "steps_done": meta.get("steps_done"),
+        "command": meta.get("command"),
+        "history": meta.get("history"),
+    }
+
+
+def _previous_init(metadata: Path):
+    try:
+        return json.loads(metadata.read_text(encoding="utf-8")).get("init")
+    except (OSError, ValueError):
+        return None
 
 
 def _verifier_matches(out: Path, data_hash: str) -> bool:

@@ -30,8 +30,19 @@ from ..files import write_bytes_atomic
 from ..geometry import CameraGroups, fit_cameras
 from ..provenance import KEY
 from ..report_plots import ScalePanel, save_class_counts, save_scale_plot, save_size_histograms
+from ..tally import tally_stages
 from .audit_section import audit_html
-from .markup import _accepted_card, _document, _esc, _funnel_html, _gallery, _plots_html, _rejected_card, _source_links
+from .markup import (
+    _accepted_card,
+    _document,
+    _esc,
+    _funnel_html,
+    _gallery,
+    _plots_html,
+    _rejected_card,
+    _source_links,
+    _stages_html,
+)
 from .run_record import Funnel, RunRecord, _boxes_by_class, _is_synthetic, _pairs, funnel, read_run, real_from_labels
 from .thumbnails import ASSETS, NEW_BOX_RGB, REAL_BOX_RGB, _make_thumbnails, annotated_thumbnail
 
@@ -198,6 +209,7 @@ def write_report(
     body = "\n".join(
         [
             _funnel_html(counts),
+            _stages_html(tally_stages(run.manifest, run.identity.get("stages") or ())),
             audit_html(run.root),
             _plots_html(note, ""),
             gallery("accepted", 1, ""),

@@ -169,6 +169,30 @@ def _funnel_html(f: Funnel) -> str:
     )
 
 
+def _stages_html(tallies: Sequence[Any]) -> str:
+    """The funnel per stage (:class:`pipeline.tally.StageTally`): wanted, accepted, attempts, rejections, sizes."""
+    rows = []
+    for t in tallies:
+        rejected = ", ".join(f"{_esc(name)} {n}" for name, n in t.rejected_by.items()) or "none"
+        sizes = ", ".join(f"{_esc(band)} {a}/{n}" for band, (a, n) in t.bands.items()) or "none"
+        css = "bad" if t.short else "ok"
+        rows.append(
+            f'<tr data-stage="{t.index}" data-short="{t.short}"><th>{t.index}: {_esc(t.kind)} {_esc(t.target_class)}'
+            f'</th><td class="num">{t.wanted}</td><td class="num {css}">{t.accepted}</td>'
+            f'<td class="num">{t.short}</td><td class="num">{t.attempted}</td><td>{rejected}</td><td>{sizes}</td></tr>'
+        )
+    head = (
+        "<tr><th>stage</th><th>wanted</th><th>accepted</th><th>short</th><th>attempts</th>"
+        "<th>rejected by</th><th>accepted / attempts by object height</th></tr>"
+    )
+    return (
+        '<section id="stages"><h2>Per stage</h2>\n'
+        '<p class="note">A stage is short when it accepted fewer outputs than wanted '
+        "(then <code>rarefill run</code> exits 3).</p>\n"
+        f'<table class="funnel stages">\n{head}{"".join(rows)}\n</table></section>'
+    )
+
+
 def _plots_html(note: str, prefix: str) -> str:
     figures = [
         ("scale.png", "", "Box height against bottom row, with the fitted ground lines; new instances as diamonds"),

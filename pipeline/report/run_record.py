@@ -13,7 +13,7 @@ from typing import Any
 import numpy as np
 
 from ..dataset import Annotation, Category, Dataset, Scene, load_dataset
-from ..errors import RunError
+from ..errors import RunError, RunInputError
 from ..geometry import is_usable
 from ..provenance import KEY
 
@@ -86,7 +86,7 @@ def read_run(run_dir: str | os.PathLike[str]) -> RunRecord:
     labels_path, manifest_path = root / "labels.json", root / "manifest.jsonl"
     for path in (labels_path, manifest_path):
         if not path.is_file():
-            raise RunError(
+            raise RunInputError(
                 f"{path}: not found; {root} is not a finished rarefill run folder",
                 hint="give the folder `rarefill run` wrote to (its labels.json appears when the run ends)",
             )

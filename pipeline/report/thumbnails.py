@@ -12,12 +12,9 @@ from PIL import Image, UnidentifiedImageError
 from ..dataset import Scene, read_rgb
 from ..errors import RunError
 from ..files import write_bytes_atomic
+from ..writer import NEW_BOX_RGB, REAL_BOX_RGB
 from .run_record import RunRecord, _is_synthetic
 
-REAL_BOX_RGB = (40, 170, 255)
-"""Colour of real (kept) boxes in thumbnails: a light blue."""
-NEW_BOX_RGB = (255, 120, 0)
-"""Colour of new (synthetic) boxes in thumbnails: orange, apart from the blue for colour-blind readers."""
 THUMB_WIDTH = 320
 """Width of accepted-image thumbnails in pixels (shown at up to 300 px)."""
 ASSETS = "report"

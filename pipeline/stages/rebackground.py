@@ -29,7 +29,6 @@ from collections.abc import Sequence
 
 import cv2
 import numpy as np
-from pycocotools import mask as mask_utils
 
 from ..dataset import Annotation, Dataset
 from ..errors import ModelError
@@ -37,6 +36,7 @@ from ..filters import FilterLimits
 from ..generator import BACKGROUND, InpaintRequest
 from ..plan import Job, derive_seed
 from ..recipe import StageSpec
+from ..silhouette import box_pixels, grabcut_in_box, segmentation_mask
 from .base import Candidate, Draft, Failure, StageContext
 
 SEAM_CLEARANCE_PX = 4
@@ -84,21 +84,6 @@ def eligible(dataset: Dataset, spec: StageSpec, limits: FilterLimits) -> list[tu
 # the object's own pixels
 
 
-def segmentation_mask(segmentation, height: int, width: int) -> np.ndarray:
-    """Decode a COCO segmentation (polygons, RLE or compressed RLE) into an (H, W) bool mask (pycocotools)."""
-    if isinstance(segmentation, list):
-        rle = mask_utils.merge(mask_utils.frPyObjects(segmentation, height, width))
-    elif isinstance(segmentation, dict) and isinstance(segmentation.get("counts"), list):
-        rle = mask_utils.frPyObjects(segmentation, height, width)
-    elif isinstance(segmentation, dict):
-        rle = dict(segmentation)
-        if isinstance(rle["counts"], str):
-            rle["counts"] = rle["counts"].encode("ascii")
-    else:
-        raise ValueError(f"segmentation must be polygons or an RLE dict, got {type(segmentation).__name__}")
-    return mask_utils.decode(rle).astype(bool)
-
-
 def object_pixels(image: np.ndarray, ann: Annotation, *, iterations: int = 4) -> tuple[np.ndarray, str]:
     """The pixels of a labelled object: its segmentation, else a GrabCut estimate inside its box.
 
@@ -129,26 +114,13 @@ def object_pixels(image: np.ndarray, ann: Annotation, *, iterations: int = 4) ->
         if mask.any():
             return mask, "segmentation"
     x, y, w, h = ann.bbox
+    c0, r0, c1, r1 = box_pixels(ann.bbox, (height, width))
     box = np.zeros((height, width), dtype=bool)
-    c0, r0 = max(0, int(math.floor(x))), max(0, int(math.floor(y)))
-    c1, r1 = min(width, int(math.ceil(x + w))), min(height, int(math.ceil(y + h)))
     box[r0:r1, c0:c1] = True
     if min(c1 - c0, r1 - r0) < 6:
         return box, "box"
     grow = max(4, int(math.ceil(0.3 * max(w, h))))
-    q0, p0 = max(0, c0 - grow), max(0, r0 - grow)
-    q1, p1 = min(width, c1 + grow), min(height, r1 + grow)
-    labels = np.full((p1 - p0, q1 - q0), cv2.GC_BGD, np.uint8)
-    labels[r0 - p0 : r1 - p0, c0 - q0 : c1 - q0] = cv2.GC_PR_FGD
-    background, foreground = np.zeros((1, 65)), np.zeros((1, 65))
-    roi = np.ascontiguousarray(image[p0:p1, q0:q1][..., ::-1])
-    # GrabCut starts its colour models with k-means on OpenCV's own (thread-local) random generator, which
-    # takes no seed argument: reset it, or the same box would give a different mask in each run.
-    cv2.setRNGSeed(0)
-    cv2.grabCut(roi, labels, None, background, foreground, iterations, cv2.GC_INIT_WITH_MASK)
-    mask = np.zeros((height, width), dtype=bool)
-    mask[p0:p1, q0:q1] = (labels == cv2.GC_FGD) | (labels == cv2.GC_PR_FGD)
-    mask &= box
+    mask = grabcut_in_box(image, (c0, r0, c1, r1), grow=grow, iterations=iterations)
     share = mask.sum() / box.sum()
     if not GRABCUT_SHARE[0] <= share <= GRABCUT_SHARE[1]:
         return box, "box"

@@ -130,7 +130,7 @@ def complete(draft_: Draft, frames: Sequence[np.ndarray], ctx: StageContext) -> 
     verdicts = []
     if rendered.veiled is not None:
         verdicts = visibility(image, rendered.veiled, geometry, beta=rendered.beta)
-    crowd = options["keep_invisible_as_crowd"]
+    crowd = options.get("keep_invisible_as_crowd", False)  # only fog and snow take it (see recipe.OPTION_APPLIES)
     invisible = {v["annotation_id"]: v for v in verdicts if v["invisible"]}
     kept, dropped = [], []
     for ann in scene.annotations:
