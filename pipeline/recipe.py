@@ -73,7 +73,7 @@ class Recipe:
 # schema: key -> (checker, default). A checker returns the cleaned value or raises _Bad(reason).
 
 
-class _Bad(Exception):
+class _Bad(ValueError):
     pass
 
 

@@ -109,12 +109,24 @@ def warn_missing_masks(dataset: Dataset) -> int:
     return missing
 
 
-def _read_mask(name: object, root: Path, scene: Scene, source: object, where: str) -> np.ndarray:
+def resolve_inside(name: object, root: Path, source: object, where: str) -> Path:
+    """The file an image entry's extra key names: a relative path that must stay inside ``root``.
+
+    Raises
+    ------
+    DatasetError
+        Not a non-empty relative file name, or resolving outside ``root`` (naming ``where``).
+    """
     if not isinstance(name, str) or not name or Path(name).is_absolute():
         raise DatasetError(source, where, f"must be a relative file name, got {name!r}")
     path = (root / name).resolve()
     if not path.is_relative_to(root):
         raise DatasetError(source, where, f"{name!r} resolves outside the image folder {root}")
+    return path
+
+
+def _read_mask(name: object, root: Path, scene: Scene, source: object, where: str) -> np.ndarray:
+    path = resolve_inside(name, root, source, where)
     try:
         with Image.open(path) as img:
             img.load()

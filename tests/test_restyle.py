@@ -229,3 +229,105 @@ def test_run_writes_restyled_images_with_condition_provenance(tmp_path):
         assert kept_ids | dropped == set(real) and not kept_ids & dropped
         for a in written:
             assert a["bbox"] == list(real[a["rarefill"]["source_annotation_id"]].bbox)
+
+
+# --------------------------------------------------------------------------------------------------
+# distances: the ground plane, a given depth map, silhouettes
+
+
+def test_fog_on_the_given_road_follows_koschmieder(known_scene):
+    # Koschmieder 1924 (via Sakaridis et al., IJCV 2018): I = J t + A (1 - t), t = exp(-beta d), with
+    # beta = ln(20) / V (WMO-No. 8: the MOR is where contrast falls to 5%) and d = f h / (v - v_h) on the
+    # ground plane (Hartley & Zisserman 2004). Invert it per pixel on the road column and compare.
+    dataset, ctx = known_scene
+    visibility = 60.0
+    out = restyled(ctx, spec(condition="fog", visibility_m=visibility))
+    clear = dataset.scenes[0].load_rgb()
+    a = np.array(out.details["airlight_rgb"]) / 255.0
+
+    def decode(v):
+        return np.where(v <= 0.04045, v / 12.92, ((v + 0.055) / 1.055) ** 2.4)  # IEC 61966-2-1
+
+    focal = focal_from_fov(160)
+    for row in (50, 60, 75, 95):
+        z = focal * 1.5 / (row + 0.5 - HORIZON)
+        expected = math.exp(-math.log(20) * z / visibility)
+        j, i = decode(clear[row, 52] / 255.0), decode(out.image[row, 52] / 255.0)
+        t = (i - decode(a)) / (j - decode(a))
+        assert float(np.median(t)) == pytest.approx(expected, abs=0.02)
+
+
+def _with_depth(tmp_path, depth: np.ndarray, mode: str = "I;16"):
+    source = json.loads((tmp_path / "set.json").read_text())
+    if mode == "npy":
+        np.save(tmp_path / "images" / "d.npy", depth)
+    else:
+        Image.fromarray(depth.astype(np.uint16 if mode == "I;16" else np.uint8)).save(tmp_path / "images" / "d.png")
+    source["images"][0]["depth_map"] = "d.npy" if mode == "npy" else "d.png"
+    (tmp_path / "set.json").write_text(json.dumps(source))
+    return load_dataset(tmp_path / "set.json")
+
+
+def test_a_given_depth_map_is_used_exactly(known_scene, tmp_path):
+    from pipeline.stages.restyle_scene import scene_geometry
+    from pipeline.weather.distance import Source
+
+    dataset, ctx = known_scene
+    depth = np.zeros((96, 160), np.int64)
+    depth[40:] = np.linspace(65_000, 2_500, 56).astype(np.int64)[:, None]  # 65 m to 2.5 m, in millimetres
+    depth[60:90, 60:90] = 7_300  # the tractor at 7.3 m whatever its footprint says
+    depth[45, :10] = 65_535  # beyond the PNG's range: left to the estimate
+    data = _with_depth(tmp_path, depth)
+    ctx2 = context(data, ctx.ground)
+    geometry = scene_geometry(data.scenes[0].load_rgb(), data.scenes[0], ctx2)
+    measured = (depth > 0) & (depth < 65_535)
+    assert np.array_equal(geometry.distance[measured], depth[measured] / 1000.0)
+    assert np.all(geometry.distance_map.source[measured] == Source.MEASURED)
+    assert np.all(geometry.distance_map.source[~measured] != Source.MEASURED)  # the sky: estimated
+    metres = np.where(depth > 0, depth * 0.004, np.nan)  # up to 260 m: a float .npy has no range limit
+    data_npy = _with_depth(tmp_path, metres, mode="npy")
+    found = scene_geometry(data_npy.scenes[0].load_rgb(), data_npy.scenes[0], context(data_npy, ctx.ground))
+    assert np.array_equal(found.distance[depth > 0], metres[depth > 0])
+    out = restyled(ctx2, spec(condition="fog", visibility_m=50.0))
+    tractor = next(v for v in out.details["visibility"] if v["annotation_id"] == 14)
+    assert tractor["contrast"] > 0.05
+
+
+def test_a_bad_depth_map_is_refused_naming_the_key(known_scene, tmp_path):
+    from pipeline.errors import DatasetError
+    from pipeline.stages.restyle_scene import read_depth_map
+
+    data = _with_depth(tmp_path, np.full((96, 160), 9, np.uint8), mode="L")
+    with pytest.raises(DatasetError, match="depth_map.*16-bit"):
+        read_depth_map(data.scenes[0], data)
+    data = _with_depth(tmp_path, np.full((50, 160), 9000))
+    with pytest.raises(DatasetError, match="160x50 px but the image is 160x96"):
+        read_depth_map(data.scenes[0], data)
+
+
+def test_the_night_sky_is_no_brighter_than_the_ground(known_scene):
+    # a day sky under the low-light curve would stay the brightest thing in the frame; a night sky is not
+    dataset, ctx = known_scene
+    out = restyled(ctx, spec(condition="night"))
+    sky, grass = out.image[5:35, 120:155].mean(), out.image[50:60, 120:155].mean()
+    clear = dataset.scenes[0].load_rgb()
+    assert clear[5:35, 120:155].mean() > 1.5 * clear[50:60, 120:155].mean()
+    assert sky <= grass + 3
+
+
+def test_restyle_preview_writes_input_distance_and_output(known_scene, tmp_path):
+    from typer.testing import CliRunner
+
+    from pipeline.cli import app
+
+    out = tmp_path / "preview.png"
+    args = ["restyle-preview", str(tmp_path / "set.json"), "--image", "a.png", "--condition", "fog"]
+    result = CliRunner().invoke(app, [*args, "--visibility", "80", "--out", str(out), "--panel-width", "200"])
+    assert result.exit_code == 0, result.output
+    sheet = np.asarray(Image.open(out))
+    assert sheet.shape[1] == 3 * (200 + 4)  # input | distance | fog, each with a 4 px gutter
+    assert sheet.shape[0] == 22 + round(96 * 200 / 160) + 4  # label bar, panel, gutter
+    bad = CliRunner().invoke(app, ["restyle-preview", str(tmp_path / "set.json"), "--image", "nope.png"])
+    assert bad.exit_code == 2 and "nope.png" in bad.output
+    bad = CliRunner().invoke(app, ["restyle-sheet", str(tmp_path / "set.json"), "--conditions", "fog:3"])
+    assert bad.exit_code == 2 and "fog:3" in bad.output

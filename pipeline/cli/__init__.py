@@ -5,7 +5,7 @@ Each module holds a few commands of one kind and registers them on the one Typer
 """
 
 # Imported in the order `rarefill --help` lists the commands: look, train, make, after.
-from . import data, model, runs, after_run, audit  # noqa: F401, I001  (registers the commands)
+from . import data, preview, model, runs, after_run, audit  # noqa: F401, I001  (registers the commands)
 from .base import app
 
 __all__ = ["app"]
