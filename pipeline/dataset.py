@@ -185,6 +185,13 @@ def _header_orientation(img: Image.Image) -> int:
 # loading
 
 
+def default_images_dir(json_path: str | os.PathLike[str]) -> Path:
+    """The folder a COCO file's ``file_name`` entries are relative to when none is given: ``images/``
+    beside the file if it exists, else the file's own folder."""
+    folder = Path(json_path).parent
+    return folder / "images" if (folder / "images").is_dir() else folder
+
+
 def load_dataset(
     json_path: str | os.PathLike[str],
     images_dir: str | os.PathLike[str] | None = None,
@@ -232,7 +239,7 @@ def load_dataset(
     except RecursionError:
         raise DatasetError(json_path, "", "malformed JSON: nested too deeply") from None
     if images_dir is None:
-        images_dir = json_path.parent / "images" if (json_path.parent / "images").is_dir() else json_path.parent
+        images_dir = default_images_dir(json_path)
     return parse_dataset(raw, Path(images_dir), source=json_path, check_images=check_images, clip_boxes=clip_boxes)
 
 

@@ -28,6 +28,7 @@ from .placement import aspect_ratios
 from .plan import Plan, derive_seed, make_plan
 from .recipe import Recipe
 from .stages import stage_module
+from .surface import warn_missing_masks
 from .tally import StageTally, read_manifest, summary_record, tally_stages
 from .writer import RUN_FORMAT, RunFolder, assemble, read_chunks
 
@@ -86,6 +87,7 @@ class RunSummary:
 def prepare(recipe: Recipe) -> Setup:
     """Load the data set, fit the ground model, decide eligible sources and build the plan."""
     dataset = load_dataset(recipe.dataset, recipe.images)
+    warn_missing_masks(dataset)
     names = set(dataset.category_names().values())
     for spec in recipe.stages:
         if spec.target_class not in names:

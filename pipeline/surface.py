@@ -2,8 +2,8 @@
 
 A scene names its mask in the image entry's extra key ``"drivable_mask"``: a single-channel PNG (0 and
 255, or 0 and 1) of the image's size, with a path relative to the data set's image folder. Without one,
-the surface is estimated from where the labelled objects of the whole data set stand (their footprints),
-and a :class:`~pipeline.errors.DatasetWarning` says so.
+the surface is estimated from where the labelled objects of the whole data set stand (their footprints);
+:func:`warn_missing_masks` says so once per data set, with the count, rather than once per image.
 """
 
 from __future__ import annotations
@@ -50,7 +50,10 @@ class Surface:
 
 
 def mask_for(scene: Scene, *, dataset: Dataset | None = None) -> Surface:
-    """The drivable surface of ``scene``: its mask file, else an estimate with a :class:`DatasetWarning`.
+    """The drivable surface of ``scene``: its mask file, else an estimate (``Surface.estimated``).
+
+    It does not warn about an estimate: a data set of thousands of images without masks would print as
+    many lines; :func:`warn_missing_masks` says it once per data set.
 
     Parameters
     ----------
@@ -80,11 +83,30 @@ def mask_for(scene: Scene, *, dataset: Dataset | None = None) -> Surface:
     mask = estimate_surface(scenes, width=scene.width, height=scene.height)
     if not mask.any():
         raise DatasetError(source, where, "no mask named and no boxes of this image size to estimate a surface from")
-    warnings.warn(
-        DatasetWarning(f"{source}: {where}: no drivable mask given; surface estimated from label footprints"),
-        stacklevel=2,
-    )
     return Surface(mask, estimated=True)
+
+
+def warn_missing_masks(dataset: Dataset) -> int:
+    """Issue one :class:`DatasetWarning` if images of ``dataset`` name no drivable mask, and say what follows.
+
+    Returns
+    -------
+    int
+        How many images name no mask (0: no warning).
+    """
+    missing = sum(scene.extra.get(MASK_KEY) is None for scene in dataset.scenes)
+    if missing:
+        warnings.warn(
+            DatasetWarning(
+                f"{dataset.source}: {missing} of {len(dataset.scenes)} images name no drivable mask; their surface "
+                "is estimated from where the labelled objects stand, so new objects are placed, and the surface "
+                "filter judges them, only where objects were already seen. To give masks, add "
+                f'"{MASK_KEY}": "FILE.png" to each image entry (a 0/255 single-channel PNG of the image\'s size, '
+                "relative to the image folder)"
+            ),
+            stacklevel=2,
+        )
+    return missing
 
 
 def resolve_inside(name: object, root: Path, source: object, where: str) -> Path:

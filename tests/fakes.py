@@ -55,16 +55,12 @@ class AlwaysVerifier:
 
 def fake_context(dataset, ground, *, verifier=None, surfaces=None):
     """A StageContext over ``dataset`` with the block generator and every scene's surface read once."""
-    import warnings
-
     from pipeline.filters import FilterLimits
     from pipeline.stages.base import StageContext
     from pipeline.surface import mask_for
 
     if surfaces is None:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")  # estimated surfaces warn; the tests do not care
-            surfaces = {s.id: mask_for(s, dataset=dataset) for s in dataset.scenes}
+        surfaces = {s.id: mask_for(s, dataset=dataset) for s in dataset.scenes}
     return StageContext(
         dataset=dataset,
         generator=BlockGenerator(),

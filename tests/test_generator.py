@@ -238,6 +238,34 @@ def test_fit_resumes_from_its_checkpoint(scenes, tiny_model, tmp_path):
         fit(scenes, out_dir=tmp_path / "m", steps=9, seed=5, batch_size=4, config=TINY, settings=QUICK)
 
 
+def test_a_minutes_budget_covers_the_verifier_and_then_the_denoiser(scenes, tmp_path):
+    import time
+
+    settings = dataclasses.replace(QUICK, verifier_steps=50)  # one verifier progress event, at its end
+    minutes = 0.1
+    events: list[tuple[float, object]] = []
+    started = time.monotonic()
+    result = fit(
+        scenes,
+        out_dir=tmp_path / "m",
+        minutes=minutes,
+        batch_size=2,
+        config=TINY,
+        settings=settings,
+        progress=lambda event: events.append((time.monotonic(), event)),
+    )
+    phases = [event.phase for _, event in events]
+    assert phases == ["verifier"] + ["denoiser"] * result.steps_done and result.steps_done >= 1
+    # The verifier's steps are fixed; the denoiser trains for what they left of the budget (at least one
+    # step) and stops at the first step that ends past it: so it overruns by at most its longest step.
+    verifier_seconds = events[0][0] - started
+    times = [t for t, _ in events]
+    longest_step = max(b - a for a, b in zip(times, times[1:], strict=False))
+    denoiser_seconds = events[-1][1].elapsed_s
+    assert denoiser_seconds <= max(0.0, minutes * 60 - verifier_seconds) + longest_step + 0.5
+    assert (tmp_path / "m" / "verifier.json").is_file() and (tmp_path / "m" / "rarefill_model.json").is_file()
+
+
 def test_fit_checks_its_budget(scenes, tmp_path):
     with pytest.raises(ValueError, match="exactly one"):
         fit(scenes, out_dir=tmp_path, steps=3, minutes=1.0)
@@ -359,6 +387,34 @@ def test_verifier_tells_striped_blocks_from_plain_ones_and_background(tiny_model
 def test_crop_box_pads_at_the_border():
     image = np.full((10, 10, 3), 9, np.uint8)
     assert (crop_box(image, (0, 0, 4, 4), size=8, margin=0.5) == 9).all()
+
+
+def test_loading_the_shipped_model_prints_nothing(capfd):
+    import logging
+    import warnings
+
+    folder = REPO / "models" / "default"
+    if not (folder / "rarefill_model.json").is_file():
+        pytest.skip("the shipped model folder models/default is not present")
+    # diffusers logs through its own handler, made on whatever stderr was when it was imported (under
+    # pytest, a capture that capfd does not see): so listen on its logger as well as on the descriptors.
+    records: list[logging.LogRecord] = []
+    listener = logging.Handler(logging.INFO)
+    listener.emit = records.append
+    logger = logging.getLogger("diffusers")
+    logger.addHandler(listener)
+    capfd.readouterr()
+    try:
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            generator = load(folder)
+            load_verifier(folder)
+    finally:
+        logger.removeHandler(listener)
+    assert generator.classes
+    assert [r.getMessage() for r in records if r.levelno >= logging.WARNING] == []
+    assert [str(w.message) for w in caught] == []
+    assert capfd.readouterr() == ("", "")
 
 
 # --------------------------------------------------------------------------------------------------

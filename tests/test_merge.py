@@ -361,13 +361,37 @@ def test_info_records_the_inputs_hashes(world):
     assert hashes["held/test.json"] == sha256(world.test)
 
 
-def test_file_names_leaving_the_output_folder_are_flagged(world):
+def test_relative_file_names_leaving_the_image_folder_are_flagged(world):
     out = world.root / "merged" / "train.json"
-    with pytest.warns(DatasetWarning, match=r"16 file_name\(s\) climb out of the output folder"):
-        world.merge(strict=False, synthetic_share=0.5, out=out)
+    with pytest.warns(DatasetWarning, match=r"16 file_name\(s\) climb out of the image folder"):
+        world.merge(strict=False, synthetic_share=0.5, out=out, images_mode="relative")
     names = [im["file_name"] for im in json.loads(out.read_text())["images"]]
     assert names[0] == "../real/images/train_0001.png"
     assert all((out.parent / name).is_file() for name in names)
+
+
+@pytest.mark.parametrize("where", ["merged/train.json", "real/merged.json", "merged.json"])
+def test_the_default_output_loads_back_in_stats(world, where):
+    # merged/: relative names would need ../; real/: an images/ folder beside the output is where the
+    # loader looks, not the output's own folder
+    out = world.root / where
+    result = runner.invoke(app, cli_args(world, "--synthetic-share", "0.5", "--out", str(out)))
+    assert result.exit_code == 0, result.output
+    assert "warning" not in result.stderr
+    result = runner.invoke(app, ["stats", str(out), "--json"])
+    assert result.exit_code == 0, result.output
+    merged = load_dataset(out)
+    assert len(merged.scenes) == 16 and all(scene.path.is_file() for scene in merged.scenes)
+    assert all(scene.path.samefile(world.train_images / scene.file_name.split("/")[-1]) for scene in merged.scenes[:8])
+
+
+def test_relative_names_are_relative_to_the_folder_the_loader_reads(world):
+    out = world.root / "real" / "merged.json"  # beside real/images/, where the loader looks
+    with pytest.warns(DatasetWarning, match=r"2 file_name\(s\) climb out of the image folder"):
+        world.merge(strict=False, synthetic_share=0.2, out=out, images_mode="relative")
+    names = [im["file_name"] for im in json.loads(out.read_text())["images"]]
+    assert names[:2] == ["train_0001.png", "train_0002.png"] and len(names) == 10
+    assert all(name.startswith("../../runs/a/images/run_") for name in names[8:])
 
 
 @pytest.mark.parametrize("mode", ["copy", "link"])
@@ -469,7 +493,7 @@ def test_bad_options_are_usage_errors(world, options, message):
 def test_output_may_not_overwrite_an_input(world):
     with pytest.raises(UsageError, match="is one of the input files"):
         world.merge(synthetic_share=0.2, out=world.train)
-    with pytest.raises(UsageError, match="--guard .*train.json is given twice or is the real training split"):
+    with pytest.raises(UsageError, match="--guard .*train.json is the real training split itself"):
         world.merge(synthetic_share=0.2, guards=[world.val, world.train])
     with pytest.raises(UsageError, match="--guard .*val.json is given twice"):
         world.merge(synthetic_share=0.2, guards=[world.val, world.root / "held" / ".." / "held" / "val.json"])

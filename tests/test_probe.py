@@ -383,6 +383,20 @@ def test_cli_probe_refuses_a_folder_that_is_no_run(world, tmp_path):
     assert result.exit_code == 2 and "the control must differ" in result.stderr
 
 
+def test_cli_probe_names_the_option_that_repeats_the_test_split(world):
+    result = runner.invoke(app, [*probe_args(world, "--epochs", "1"), "--guard", str(world["test"])])
+    assert result.exit_code == 2
+    assert f"error: --test {world['test']} is also given as --guard" in result.stderr
+    assert "hint: the test split is always guarded; drop it from --guard" in result.stderr
+    args = probe_args(world, "--epochs", "1")
+    args[args.index("--test") + 1] = str(world["train"])
+    result = runner.invoke(app, args)
+    assert (
+        result.exit_code == 2 and f"error: --test {world['train']} is also the training split (--real)" in result.stderr
+    )
+    assert not (world["out"] / "sets").exists()
+
+
 def test_cli_probe_refuses_a_test_split_with_other_classes(world):
     coco = json.loads(world["test"].read_text())
     coco["categories"][1]["name"] = "bus"

@@ -7,8 +7,10 @@ back with the standard library's html.parser and rendered by headless Chromium.
 
 from __future__ import annotations
 
+import html
 import json
 import subprocess
+from collections import Counter
 from html.parser import HTMLParser
 from pathlib import Path
 from urllib.parse import unquote, urlsplit
@@ -22,6 +24,7 @@ from typer.testing import CliRunner
 from pipeline.cli import app
 from pipeline.errors import RunError
 from pipeline.report import NEW_BOX_RGB, REAL_BOX_RGB, annotated_thumbnail, funnel, read_run, write_report
+from pipeline.report.markup import change_text
 
 WIDTH, HEIGHT = 640, 360
 HORIZON = 150.0
@@ -367,6 +370,57 @@ def test_report_page_shows_funnel_thumbnails_rejections_and_provenance(run_dir):
     for name in ("scale.png", "sizes.png", "counts.png"):
         assert Image.open(root / "report" / name).size[0] > 300
     assert "kept (real) annotations" in result.ground_note
+
+
+def test_cards_say_what_a_stage_changed_when_it_added_no_object(tmp_path):
+    import re
+
+    from pipeline.recipe import load_recipe
+    from pipeline.runner import run_recipe
+
+    from .conftest import SEED_SCENES
+    from .fakes import BlockGenerator
+
+    recipe = tmp_path / "recipe.toml"
+    recipe.write_text(
+        f'[run]\nname = "cards"\nseed = 1\ndataset = "{SEED_SCENES / "train.json"}"\nmodel = "{tmp_path / "none"}"\n'
+        'output = "out"\nsteps = 2\n\n'
+        '[[stage]]\nkind = "restyle"\nclass = "works_trailer"\ncount = 1\ncondition = "fog"\nvisibility_m = 80.0\n\n'
+        '[[stage]]\nkind = "restyle"\nclass = "tractor"\ncount = 1\ncondition = "night"\n\n'
+        '[[stage]]\nkind = "rebackground"\nclass = "tractor"\ncount = 1\n'
+    )
+    summary = run_recipe(load_recipe(recipe), generator=BlockGenerator(), verifier=None)
+    assert summary.accepted == 3
+    page = write_report(tmp_path / "out").path.read_text()
+    cards = re.findall(r'<figure class="card accepted">.*?"name">(.*?)</span>.*?"meta">(.*?)</span></fig', page)
+    metas = [html.unescape(re.sub("<[^>]+>", "", meta)) for _, meta in cards]
+    labels = json.loads((tmp_path / "out" / "labels.json").read_text())
+    kept = {im["file_name"]: sum(a["image_id"] == im["id"] for a in labels["annotations"]) for im in labels["images"]}
+    assert len(cards) == 3 and "new (" not in page
+    for (name, _), meta in zip(cards, metas, strict=True):
+        assert f", {kept[name]} label" in meta, meta
+    texts = sorted(m.split(" · ")[:2] for m in metas)
+    assert [t[0] for t in texts] == ["rebackground tractor", "restyle tractor", "restyle works_trailer"]
+    assert texts[0][1].startswith("background regenerated (") and "% of the image), " in texts[0][1]
+    assert texts[1][1].startswith("night, ")
+    assert texts[2][1].startswith("fog, visibility 80 m, ")
+
+
+def test_card_text_counts_dropped_and_crowded_labels():
+    fog = {"stage": {"kind": "restyle"}, "details": {"condition": "fog", "visibility_m": 120.0}}
+    dropped = {**fog, "details": {**fog["details"], "dropped": [{"annotation_id": 3}, {"annotation_id": 4}]}}
+    assert change_text(dropped, Counter(), 5) == "fog, visibility 120 m, 5 labels kept, 2 dropped (invisible)"
+    crowd = {
+        "stage": {"kind": "restyle"},
+        "details": {"condition": "snow", "snow_intensity": 0.5, "visibility_m": 600.0, "invisible_action": "crowd",
+                    "visibility": [{"invisible": True}, {"invisible": False}]},
+    }  # fmt: skip
+    assert (
+        change_text(crowd, Counter(), 2)
+        == "snow, intensity 0.5, visibility 600 m, 2 labels kept (1 invisible, as crowd regions)"
+    )
+    insert = {"stage": {"kind": "insert"}, "details": {}}
+    assert change_text(insert, Counter({"tractor": 2, "car": 1}), 1) == "3 new (tractor &times;2, car), 1 label kept"
 
 
 def test_thumbnail_draws_new_and_real_boxes_at_scaled_positions():

@@ -8,6 +8,7 @@ import signal
 import subprocess
 import sys
 import time
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -16,7 +17,7 @@ from pycocotools.coco import COCO
 
 from pipeline.collect import collect
 from pipeline.dataset import load_dataset
-from pipeline.errors import RunError
+from pipeline.errors import DatasetWarning, RunError
 from pipeline.recipe import load_recipe
 from pipeline.runner import prepare, run_recipe
 
@@ -168,6 +169,23 @@ def test_denoising_is_batched_per_chunk(tmp_path):
     generator = ShadeGenerator()
     run_recipe(load_recipe(write_recipe(tmp_path, count=8)), generator=generator, verifier=AlwaysVerifier())
     assert generator.calls[0] >= 8  # the first round of a chunk of 8 jobs is one call
+
+
+def test_a_data_set_without_masks_warns_once_with_the_count(tmp_path):
+    coco = json.loads((SEED_SCENES / "train.json").read_text())
+    for image in coco["images"]:
+        del image["drivable_mask"]
+    (tmp_path / "nomasks.json").write_text(json.dumps(coco))
+    recipe = write_recipe(tmp_path, count=4)
+    text = recipe.read_text().replace(str(SEED_SCENES / "train.json"), str(tmp_path / "nomasks.json"))
+    recipe.write_text(text.replace("[run]\n", f'[run]\nimages = "{SEED_SCENES / "images"}"\n'))
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        summary = fake_run(recipe)
+    assert summary.attempted >= 4  # the surfaces of many images were estimated on the way
+    messages = [str(w.message) for w in caught if issubclass(w.category, DatasetWarning)]
+    assert len(messages) == 1, messages
+    assert f"{len(coco['images'])} of {len(coco['images'])} images name no drivable mask" in messages[0]
 
 
 def test_unknown_class_is_a_usage_error(tmp_path):

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -11,7 +12,7 @@ from PIL import Image
 
 from pipeline.dataset import load_dataset
 from pipeline.errors import DatasetError, DatasetWarning
-from pipeline.surface import estimate_surface, footprint_share, mask_for
+from pipeline.surface import MASK_KEY, estimate_surface, footprint_share, mask_for, warn_missing_masks
 
 from .conftest import SEED_SCENES, write_png
 
@@ -84,10 +85,11 @@ def test_bad_mask_files_are_refused(tmp_path, name, values, mode, message):
     assert "drivable_mask" in str(info.value)
 
 
-def test_surface_is_estimated_from_footprints_with_a_warning(tmp_path):
+def test_surface_is_estimated_from_footprints_without_a_warning_per_image(tmp_path):
     boxes = ((10, 20, 8, 6), (40, 26, 10, 8))
     dataset = load_dataset(make_set(tmp_path, mask_name=None, boxes=boxes))
-    with pytest.warns(DatasetWarning, match="estimated"):
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
         surface = mask_for(dataset.scenes[0], dataset=dataset)
     assert surface.estimated
     # Every footprint stands on the estimate, and the region runs down to the bottom row.
@@ -96,6 +98,26 @@ def test_surface_is_estimated_from_footprints_with_a_warning(tmp_path):
     assert surface.mask[H - 1, 12:48].all()
     # Far above the highest footprint (row 26) nothing is drivable.
     assert not surface.mask[:15].any()
+
+
+def test_missing_masks_are_counted_in_one_warning(tmp_path):
+    raw = json.loads(make_set(tmp_path).read_text())
+    for i in range(2, 6):
+        write_png(tmp_path / "images" / f"{i}.png", W, H, seed=i)
+        raw["images"].append({"id": i, "file_name": f"{i}.png", "width": W, "height": H})
+    (tmp_path / "set.json").write_text(json.dumps(raw))
+    dataset = load_dataset(tmp_path / "set.json")
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        assert warn_missing_masks(dataset) == 4
+    assert len(caught) == 1 and caught[0].category is DatasetWarning
+    message = str(caught[0].message)
+    assert "4 of 5 images name no drivable mask" in message and f'add "{MASK_KEY}"' in message
+    raw["images"] = raw["images"][:1]
+    (tmp_path / "set.json").write_text(json.dumps(raw))
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        assert warn_missing_masks(load_dataset(tmp_path / "set.json")) == 0
 
 
 def test_estimate_without_boxes_is_an_error(tmp_path):

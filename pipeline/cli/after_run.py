@@ -69,9 +69,10 @@ def merge_command(
         str,
         typer.Option(
             "--images-mode",
-            help="relative: file_name points at the original files; copy / link: into <out stem>_images/.",
+            help="link (hard links) or copy: the images go to <out stem>_images/ beside the output; relative: "
+            "file_name points at the original files (may need ../, which `rarefill stats` refuses).",
         ),
-    ] = "relative",
+    ] = "link",
     seed: Annotated[int, typer.Option("--seed", help="Seeds which synthetic images are chosen.")] = 0,
     as_json: Annotated[bool, typer.Option("--json", help="Print the summary as JSON instead of a table.")] = False,
 ) -> None:

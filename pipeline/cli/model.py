@@ -18,7 +18,13 @@ def fit_command(
     out: Annotated[Path, typer.Option("--out", help="Model folder to write; training resumes from its checkpoint.")],
     images: ImagesOption = None,
     minutes: Annotated[
-        float | None, typer.Option("--minutes", min=0.01, help="Train for this much wall time (this run).")
+        float | None,
+        typer.Option(
+            "--minutes",
+            min=0.01,
+            help="Wall time for this run, both phases: the verifier first (when missing; a fixed number of "
+            "steps), then the denoiser for the rest.",
+        ),
     ] = None,
     steps: Annotated[int | None, typer.Option("--steps", min=1, help="Train until this many steps in total.")] = None,
     seed: Annotated[int, typer.Option("--seed", min=0, help="Seeds the initial weights and every batch.")] = 0,
@@ -48,11 +54,16 @@ def fit_command(
     the original in its scene. Half the object windows get no exemplar and background windows are
     mixed in, so the same model also draws objects from their class alone and fills backgrounds.
 
+    Two phases, each with its own progress bar: the object verifier (a fixed number of steps, skipped
+    when the folder already holds one for this data), then the denoiser (--steps, or what is left of
+    --minutes).
+
     Example: rarefill fit seed_scenes/train.json --out models/default --minutes 40
 
     Warm start: rarefill fit seed_scenes/train.json --out models/new --init models/default --minutes 30
     """
     import sys
+    import time
 
     from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
 
@@ -67,10 +78,13 @@ def fit_command(
     columns = (TextColumn("{task.description}"), BarColumn(), TextColumn("{task.fields[status]}"), TimeElapsedColumn())
     with Progress(*columns, console=stderr()) as bar:
         tasks: dict[str, Any] = {}
+        started = time.monotonic()
 
         def report(event: Any) -> None:
             if event.phase not in tasks:
-                total = event.total if event.total is not None else minutes * 60.0
+                # a time-limited phase fills what is left of the budget when it starts
+                left = minutes * 60.0 - (time.monotonic() - started - event.elapsed_s) if minutes else None
+                total = event.total if event.total is not None else left
                 tasks[event.phase] = bar.add_task(event.phase, total=total, status="")
             done = event.step if event.total is not None else event.elapsed_s
             bar.update(tasks[event.phase], completed=done, status=f"step {event.step}  loss {event.loss:.4f}")
@@ -89,6 +103,6 @@ def fit_command(
         )
     resumed = f", resumed at step {result.resumed_from}" if result.resumed_from else ""
     stdout().print(
-        f"wrote {result.out_dir}: {result.steps_done} steps{resumed}, "
-        f"{result.seconds / 60:.1f} min, final loss {result.final_loss:.4f}"
+        f"wrote {result.out_dir}: {result.steps_done} steps{resumed}, {(time.monotonic() - started) / 60:.1f} min "
+        f"in all ({result.seconds / 60:.1f} min for the denoiser), final loss {result.final_loss:.4f}"
     )

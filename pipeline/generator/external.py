@@ -13,6 +13,7 @@ from diffusers import StableDiffusionInpaintPipeline
 from PIL import Image
 
 from ..errors import ModelError
+from .model import model_loading_options
 from .request import BACKGROUND, InpaintRequest, check_request
 from .sample import folder_sha256
 from .windows import context_window, crop_window, paste_window, window_mask
@@ -134,7 +135,7 @@ def load_pipeline(folder: str | os.PathLike[str], prompts: Mapping[str, str] | N
             hint="give prompts, e.g. {'tractor': 'a farm tractor on a rural road'}",
         )
     try:
-        pipeline = StableDiffusionInpaintPipeline.from_pretrained(folder, local_files_only=True)
+        pipeline = StableDiffusionInpaintPipeline.from_pretrained(folder, **model_loading_options())
     except (OSError, ValueError, TypeError, RuntimeError, KeyError) as exc:
         raise ModelError(f"{folder}: diffusers inpainting pipeline cannot be loaded ({exc})") from None
     if pipeline.unet.config.in_channels != 9:

@@ -12,6 +12,7 @@ from dataclasses import asdict, dataclass
 
 import torch
 from diffusers import DDPMScheduler, DPMSolverMultistepScheduler, UNet2DModel
+from diffusers.utils import is_accelerate_available
 
 from .exemplar import EXEMPLAR_IN_CHANNELS, PLAIN_IN_CHANNELS
 from .request import BACKGROUND
@@ -26,6 +27,17 @@ MODEL_INDEX = "model_index.json"
 
 NULL_LABEL = 0
 """Class-embedding index of the dropped condition (classifier-free guidance)."""
+
+
+def model_loading_options() -> dict[str, bool]:
+    """Keyword arguments for loading a diffusers model or pipeline here: local files, the usual path.
+
+    diffusers asks for its low-memory loading path by default, which needs the ``accelerate`` package;
+    without it diffusers falls back to the usual path anyway and logs a multi-line advice to install it
+    on every load, which a user of a 4.5 MB model cannot act on. So the low-memory path is asked for only
+    when it can be taken.
+    """
+    return {"local_files_only": True, "low_cpu_mem_usage": is_accelerate_available()}
 
 
 @dataclass(frozen=True)

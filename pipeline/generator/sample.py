@@ -26,7 +26,7 @@ from diffusers import DDPMScheduler, UNet2DModel
 
 from ..errors import ModelError
 from .exemplar import EXEMPLAR_IN_CHANNELS, PLAIN_IN_CHANNELS, conditioning
-from .model import FORMAT, FORMAT_VERSION, METADATA, NULL_LABEL, sampling_scheduler
+from .model import FORMAT, FORMAT_VERSION, METADATA, NULL_LABEL, model_loading_options, sampling_scheduler
 from .request import InpaintRequest, check_request
 from .windows import Window, context_window, crop_window, paste_window, window_mask
 
@@ -285,7 +285,7 @@ def load_trained(folder: str | os.PathLike[str], *, use_bf16: bool = True) -> Di
             f"{folder}: {METADATA}: unknown format {meta.get('format')!r} version {meta.get('format_version')!r}"
         )
     try:
-        unet = UNet2DModel.from_pretrained(folder / "unet", local_files_only=True)
+        unet = UNet2DModel.from_pretrained(folder / "unet", **model_loading_options())
         scheduler = DDPMScheduler.from_pretrained(folder / "scheduler", local_files_only=True)
     except (OSError, ValueError, RuntimeError) as exc:
         raise ModelError(f"{folder}: weights cannot be loaded ({exc})") from None

@@ -120,7 +120,8 @@ def fit(
         Train until this many steps in total (counting resumed ones). Exactly one of ``steps`` and
         ``minutes`` must be given.
     minutes : float, optional
-        Train for this much wall time in this call (the verifier adds about a minute).
+        Wall-time budget of this call for both phases: the verifier first (when it must be trained),
+        then the denoiser for what is left (a fresh one at least one step).
     seed : int
         Seeds the initial weights and every batch: batch ``k`` depends only on ``(seed, k)``.
     batch_size : int
@@ -193,10 +194,18 @@ def fit(
     alphas = scheduler.alphas_cumprod.float()
     silhouettes = object_silhouettes(examples) if config.exemplar and settings.exemplar_share > 0 else None
 
-    # 4. train
+    # 4. the verifier first (retrained only when missing or made from other data): a time budget covers
+    #    both phases, so the denoiser trains for what the verifier leaves of it
+    verifier_started = time.monotonic()
+    if not _verifier_matches(out, data_hash):
+        verifier = fit_verifier(examples, steps=settings.verifier_steps, rng=seed, progress=progress)
+        save_verifier(verifier, out, data_hash=data_hash)
+    left = None if minutes is None else max(0.0, minutes - (time.monotonic() - verifier_started) / 60.0)
+
+    # 5. train the denoiser (a fresh one at least one step, so that the folder holds a trained model)
     started = time.monotonic()
     unet.train()
-    while not _done(step, steps, minutes, started):
+    while not _done(step, steps, left, started) or step == 0:
         lr = settings.learning_rate * min(1.0, (step + 1) / settings.warmup_steps)
         for group in optimizer.param_groups:
             group["lr"] = lr
@@ -212,11 +221,6 @@ def fit(
             _save_checkpoint(out / CHECKPOINT, identity, unet, ema, optimizer, step, loss_value, total_seconds)
     seconds = time.monotonic() - started
     _save_checkpoint(out / CHECKPOINT, identity, unet, ema, optimizer, step, loss_value, seconds_before + seconds)
-
-    # 5. verifier (retrained only when missing or made from other data)
-    if not _verifier_matches(out, data_hash):
-        verifier = fit_verifier(examples, steps=settings.verifier_steps, rng=seed, progress=progress)
-        save_verifier(verifier, out, data_hash=data_hash)
 
     # 6. export the EMA weights as a diffusers folder, metadata last: it marks the folder complete
     history = _history(out / METADATA, data_hash) if resumed_from else []

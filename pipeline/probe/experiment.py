@@ -197,6 +197,14 @@ def run_probe(
             raise UsageError(
                 f"{folder} is not a run folder (no labels.json)", hint="pass a folder `rarefill run` wrote"
             )
+    test_path = Path(test_json).resolve()
+    if test_path == Path(real_json).resolve():
+        raise UsageError(f"--test {test_json} is also the training split (--real); score on a held-out split")
+    if test_path in {Path(g).resolve() for g in guards}:
+        raise UsageError(
+            f"--test {test_json} is also given as --guard",
+            hint="the test split is always guarded; drop it from --guard",
+        )
     if unfiltered is not None and Path(unfiltered).resolve() in {Path(s).resolve() for s in synthetic}:
         raise UsageError(f"--unfiltered {unfiltered} is also given as --synthetic; the control must differ")
     settings = settings or TrainSettings(steps=1)

@@ -245,6 +245,61 @@ def _source_links(run: RunRecord, real: Dataset | None) -> dict[int, str]:
     return links
 
 
+def change_text(record: Mapping[str, Any], new: Counter, kept: int) -> str:
+    """What a stage did to one accepted image, for its card (HTML-escaped).
+
+    New objects by class when it added some, else what it changed (a restyle's condition and its
+    strength, a re-background's regenerated share); then the real labels kept and dropped.
+
+    Parameters
+    ----------
+    record : mapping
+        The image's provenance record (``stage`` and ``details`` are read).
+    new : Counter
+        New objects per class name.
+    kept : int
+        Real annotations carried over (crowd regions included).
+    """
+    stage = record.get("stage") if isinstance(record.get("stage"), Mapping) else {}
+    details = record.get("details") if isinstance(record.get("details"), Mapping) else {}
+    labels = f"{kept} label{'s' if kept != 1 else ''} kept"
+    dropped = len(details.get("dropped", ()))
+    if stage.get("kind") == "restyle" and details.get("invisible_action") == "crowd":
+        invisible = sum(1 for v in details.get("visibility", ()) if isinstance(v, Mapping) and v.get("invisible"))
+        labels += f" ({invisible} invisible, as crowd regions)"
+    elif dropped:
+        labels += f", {dropped} dropped" + (" (invisible)" if stage.get("kind") == "restyle" else "")
+    if new:
+        names = ", ".join(_esc(name) if n == 1 else f"{_esc(name)} &times;{n}" for name, n in new.items())
+        return f"{new.total()} new ({names}), {_esc(labels)}"
+    if stage.get("kind") == "restyle":
+        change = _condition_text(details)
+    elif stage.get("kind") == "rebackground":
+        share = details.get("regenerated_share")
+        change = "background regenerated" + (f" ({share:.0%} of the image)" if isinstance(share, float) else "")
+    else:
+        change = "no new object"
+    return _esc(f"{change}, {labels}")
+
+
+def _condition_text(details: Mapping[str, Any]) -> str:
+    """A restyle's condition and the knob that set it: ``fog, visibility 120 m``, ``rain 8 mm/h``, ``night``."""
+    condition = str(details.get("condition", "restyled"))
+
+    def number(key: str) -> str | None:
+        value = details.get(key)
+        return f"{value:g}" if isinstance(value, (int, float)) and not isinstance(value, bool) else None
+
+    if condition == "fog" and number("visibility_m"):
+        return f"fog, visibility {number('visibility_m')} m"
+    if condition == "rain" and number("rain_mm_per_h"):
+        return f"rain {number('rain_mm_per_h')} mm/h"
+    if condition == "snow" and number("snow_intensity"):
+        seen = f", visibility {number('visibility_m')} m" if number("visibility_m") else ""
+        return f"snow, intensity {number('snow_intensity')}{seen}"
+    return condition
+
+
 def _accepted_card(
     scene: Scene,
     *,
@@ -263,7 +318,7 @@ def _accepted_card(
     if link is not None:
         source_text = f'<a href="{prefix}{_url(link)}">{source_text}</a>'
     new = Counter(names[a.category_id] for a in scene.annotations if _is_synthetic(a, labels))
-    new_text = ", ".join(_esc(name) if n == 1 else f"{_esc(name)} &times;{n}" for name, n in new.items())
+    kept = len(scene.annotations) - new.total()
     provenance = {
         KEY: record,
         "annotations": [
@@ -276,7 +331,7 @@ def _accepted_card(
         f'<a href="{prefix}{_url("images/" + scene.file_name)}"><img src="{prefix}{_url(relative)}" width="{width}" '
         f'height="{height}" loading="lazy" decoding="async" alt="{_esc(scene.file_name)}"></a>'
         f'<figcaption><span class="name">{_esc(scene.file_name)}</span><br>'
-        f'<span class="meta">{_esc(what)} &middot; {new.total()} new ({new_text}) &middot; '
+        f'<span class="meta">{_esc(what)} &middot; {change_text(record, new, kept)} &middot; '
         f"{source_text}</span></figcaption>"
         f"<details><summary>provenance</summary><pre>{_pretty(provenance)}</pre></details></figure>"
     )

@@ -91,7 +91,8 @@ def complete(draft_: Draft, frames: Sequence[np.ndarray], ctx: StageContext) -> 
     verdicts = []
     if rendered.veiled is not None:
         verdicts = visibility(image, rendered.veiled, geometry, beta=rendered.beta)
-    crowd = options["keep_invisible_as_crowd"]
+    # the recipe keeps this option only for the conditions that veil objects (fog, snow)
+    crowd = options.get("keep_invisible_as_crowd", False)
     invisible = {v["annotation_id"]: v for v in verdicts if v["invisible"]}
     kept, dropped = [], []
     for ann in scene.annotations:
