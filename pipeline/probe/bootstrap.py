@@ -136,7 +136,9 @@ def match_images(ground_truth: Mapping[str, Any], results: Sequence[Mapping[str,
     return ImageMatches(tuple(int(i) for i in params.imgIds), categories, np.asarray(params.iouThrs))
 
 
-def average_precision(matches: CategoryMatches, weights: np.ndarray | None = None) -> np.ndarray | None:
+def average_precision(
+    matches: CategoryMatches, weights: np.ndarray | None = None, *, threshold: int | None = None
+) -> np.ndarray | None:
     """AP per IoU threshold of one category, each image counted ``weights[i]`` times.
 
     With all weights 1 this is COCOeval's ``accumulate`` (precision made monotone from the right, read
@@ -147,21 +149,24 @@ def average_precision(matches: CategoryMatches, weights: np.ndarray | None = Non
     matches : CategoryMatches
     weights : (I,) int ndarray, optional
         How often each test image is drawn (default: once each).
+    threshold : int, optional
+        Compute only this IoU threshold's row (index into ``ImageMatches.iou_thresholds``; 0 is IoU 0.5).
 
     Returns
     -------
-    (T,) float ndarray or None
+    (T,) float ndarray, or (1,) with ``threshold``; None when no counted ground truth is left
     """
     n_images = len(matches.positives)
     weights = np.ones(n_images, np.int64) if weights is None else np.asarray(weights)
     positives = float(np.dot(weights, matches.positives))
     if positives == 0:
         return None
+    rows = slice(None) if threshold is None else slice(threshold, threshold + 1)
     w = weights[matches.image]
     keep = w > 0
     w = w[keep].astype(np.float64)
-    tp = np.cumsum(matches.true[:, keep] * w, axis=1)
-    fp = np.cumsum(matches.false[:, keep] * w, axis=1)
+    tp = np.cumsum(matches.true[rows, keep] * w, axis=1)
+    fp = np.cumsum(matches.false[rows, keep] * w, axis=1)
     out = np.zeros(tp.shape[0])
     if tp.shape[1] == 0:
         return out
@@ -176,15 +181,20 @@ def average_precision(matches: CategoryMatches, weights: np.ndarray | None = Non
     return out
 
 
-def class_mean(matches: ImageMatches, names: Sequence[str], weights: np.ndarray | None, *, iou: str) -> float | None:
-    """Mean over ``names`` (those with counted instances) of AP50 (``iou="50"``) or AP (``iou="all"``)."""
+def class_mean(
+    matches: ImageMatches, weights: np.ndarray | None = None, *, names: Sequence[str], iou: str
+) -> float | None:
+    """Mean over ``names`` (those with counted instances) of AP50 (``iou="50"``) or AP (``iou="all"``).
+
+    With ``names`` and ``iou`` bound (``functools.partial``) it is a metric for :func:`paired_bootstrap`.
+    """
     if iou not in ("50", "all"):
         raise ValueError(f"iou must be '50' or 'all', got {iou!r}")
     values = []
     for name in names:
-        ap = average_precision(matches.categories[name], weights)
+        ap = average_precision(matches.categories[name], weights, threshold=0 if iou == "50" else None)
         if ap is not None:
-            values.append(float(ap[0]) if iou == "50" else float(ap.mean()))
+            values.append(float(ap.mean()))
     return float(np.mean(values)) if values else None
 
 
