@@ -259,13 +259,16 @@ def write_run(folder: Path, train: Path, *, seed: int) -> Path:
 
 
 @pytest.fixture
-def world(tmp_path: Path) -> dict[str, Path]:
+def world(tmp_path: Path) -> dict:
     train = write_split(tmp_path / "real", "train", 4, seed=1)
+    filtered = write_run(tmp_path / "runs" / "filtered", train, seed=3)
+    unfiltered = write_run(tmp_path / "runs" / "unfiltered", train, seed=4)
     return {
         "train": train,
         "test": write_split(tmp_path / "held", "test", 2, seed=2),
-        "filtered": write_run(tmp_path / "runs" / "filtered", train, seed=3),
-        "unfiltered": write_run(tmp_path / "runs" / "unfiltered", train, seed=4),
+        "filtered": filtered,
+        "unfiltered": unfiltered,
+        "arms": {"filtered": [filtered], "unfiltered": [unfiltered]},
         "out": tmp_path / "probe",
     }
 
@@ -274,9 +277,8 @@ def test_probe_trains_every_condition_and_seed_and_writes_results(world):
     settings = TrainSettings(steps=1, batch_size=2, input_scale=1.0, width=4)
     lines: list[str] = []
     result = run_probe(
-        world["train"], test_json=world["test"], guards=[], synthetic=[world["filtered"]], out=world["out"],
-        unfiltered=world["unfiltered"], shares=(0.0, 0.5), seeds=2, epochs=1, settings=settings, threads=1,
-        progress=lines.append,
+        world["train"], test_json=world["test"], guards=[], arms=world["arms"], out=world["out"],
+        shares=(0.0, 0.5), seeds=2, epochs=1, settings=settings, threads=1, progress=lines.append,
     )  # fmt: skip
     conditions = [(r.condition, r.seed) for r in result.runs]
     assert conditions == [(c, s) for s in (0, 1) for c in ("real", "filtered@0.5", "unfiltered@0.5")]
@@ -289,11 +291,14 @@ def test_probe_trains_every_condition_and_seed_and_writes_results(world):
     saved = json.loads(paths["json"].read_text())
     assert [c["condition"] for c in saved["conditions"]] == ["real", "filtered@0.5", "unfiltered@0.5"]
     assert "| filtered@0.5 | 0.500 | 8 (4) |" in paths["markdown"].read_text()
+    assert [c["condition"] for c in saved["intervals"]] == ["real", "filtered@0.5", "unfiltered@0.5"]
+    assert saved["intervals"][0]["vs_real"] is None and saved["intervals"][1]["vs_real"]["rare_ap50"]["resamples"] > 0
+    assert "paired bootstrap" in paths["markdown"].read_text()
     assert paths["plot"].read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     # a second probe with the same inputs reuses every trained model
     again = run_probe(
-        world["train"], test_json=world["test"], guards=[], synthetic=[world["filtered"]], out=world["out"],
-        unfiltered=world["unfiltered"], shares=(0.0, 0.5), seeds=2, epochs=1, settings=settings, threads=1,
+        world["train"], test_json=world["test"], guards=[], arms=world["arms"], out=world["out"],
+        shares=(0.0, 0.5), seeds=2, epochs=1, settings=settings, threads=1,
     )  # fmt: skip
     assert [r.train_seconds for r in again.runs] == [r.train_seconds for r in result.runs]
 
@@ -302,8 +307,8 @@ def test_probe_turns_minutes_into_one_step_count_for_every_model(world):
     settings = TrainSettings(steps=1, batch_size=2, input_scale=1.0, width=4)
     lines: list[str] = []
     result = run_probe(
-        world["train"], test_json=world["test"], guards=[], synthetic=[world["filtered"]], out=world["out"],
-        shares=(0.5,), seeds=1, minutes=0.02, settings=settings, threads=1, progress=lines.append,
+        world["train"], test_json=world["test"], guards=[], arms={"filtered": [world["filtered"]]},
+        out=world["out"], shares=(0.5,), seeds=1, minutes=0.02, settings=settings, threads=1, progress=lines.append,
     )  # fmt: skip
     steps = {r.steps for r in result.runs}
     assert len(steps) == 1 and steps.pop() == result.settings.steps >= 1
@@ -341,7 +346,7 @@ def test_parse_shares():
 
 def probe_args(world, *extra: str) -> list[str]:
     return [
-        "probe", "--real", str(world["train"]), "--test", str(world["test"]), "--synthetic", str(world["filtered"]),
+        "probe", "--real", str(world["train"]), "--test", str(world["test"]), "--arm", f"filtered={world['filtered']}",
         "--out", str(world["out"]), *extra,
     ]  # fmt: skip
 
@@ -362,8 +367,7 @@ def test_cli_probe_happy_path_with_two_worker_processes(world):
 @pytest.mark.parametrize(
     ("extra", "message"),
     [
-        ((), "give exactly one of --epochs and --minutes"),
-        (("--epochs", "1", "--minutes", "1"), "give exactly one of --epochs and --minutes"),
+        (("--epochs", "1", "--minutes", "1"), "give at most one of --epochs and --minutes"),
         (("--epochs", "0"), "--epochs must be > 0"),
         (("--epochs", "1", "--shares", "0,1"), "each share must be in [0, 1)"),
         (("--epochs", "1", "--shares", "a"), "--shares must be comma-separated numbers"),
@@ -377,10 +381,19 @@ def test_cli_probe_usage_errors(world, extra, message):
 
 
 def test_cli_probe_refuses_a_folder_that_is_no_run(world, tmp_path):
-    result = runner.invoke(app, [*probe_args(world, "--epochs", "1"), "--unfiltered", str(tmp_path)])
+    result = runner.invoke(app, [*probe_args(world, "--epochs", "1"), "--arm", f"unfiltered={tmp_path}"])
     assert result.exit_code == 2 and "is not a run folder (no labels.json)" in result.stderr
-    result = runner.invoke(app, [*probe_args(world, "--epochs", "1"), "--unfiltered", str(world["filtered"])])
-    assert result.exit_code == 2 and "the control must differ" in result.stderr
+    result = runner.invoke(app, [*probe_args(world, "--epochs", "1"), "--arm", f"unfiltered={world['filtered']}"])
+    assert (
+        result.exit_code == 2
+        and "is given in arm 'filtered' and in arm 'unfiltered'; arms must differ" in result.stderr
+    )
+    result = runner.invoke(app, [*probe_args(world, "--epochs", "1"), "--arm", "real=" + str(world["unfiltered"])])
+    assert result.exit_code == 2 and "not 'real'" in result.stderr
+    result = runner.invoke(app, [*probe_args(world, "--epochs", "1"), "--arm", "nofolder"])
+    assert result.exit_code == 2 and "--arm must look like NAME=RUN_DIR" in result.stderr
+    result = runner.invoke(app, [*probe_args(world, "--epochs", "1"), "--baseline", "paste"])
+    assert result.exit_code == 2 and "--baseline 'paste' is not one of the arms (filtered)" in result.stderr
 
 
 def test_cli_probe_names_the_option_that_repeats_the_test_split(world):
@@ -404,3 +417,26 @@ def test_cli_probe_refuses_a_test_split_with_other_classes(world):
     result = runner.invoke(app, probe_args(world, "--epochs", "1"))
     assert result.exit_code == 2
     assert "test.json: categories: names differ from the training split's" in result.stderr
+
+
+def write_mislabelled_run(folder: Path, train: Path, *, seed: int) -> Path:
+    """A run whose images are like the real ones, but with the car and tractor labels swapped."""
+    write_run(folder, train, seed=seed)
+    labels = json.loads((folder / "labels.json").read_text())
+    for ann in labels["annotations"]:
+        ann["category_id"] = {1: 4, 4: 1}[ann["category_id"]]
+    (folder / "labels.json").write_text(json.dumps(labels))
+    return folder
+
+
+def test_an_arm_of_mislabelled_boxes_scores_below_real_only(tmp_path):
+    train = write_split(tmp_path / "real", "train", 8, seed=1)
+    test = write_split(tmp_path / "held", "test", 6, seed=2)
+    wrong = write_mislabelled_run(tmp_path / "runs" / "wrong", train, seed=3)
+    settings = TrainSettings(steps=1, batch_size=2, input_scale=1.0, width=8, learning_rate=4e-3)
+    result = run_probe(
+        train, test_json=test, guards=[], arms={"mislabelled": [wrong]}, out=tmp_path / "probe",
+        shares=(0.0, 0.5), seeds=2, epochs=15, settings=settings, threads=1,
+    )  # fmt: skip
+    rare = {(r.arm, r.seed): rare_ap50(r.evaluation, result.rare_classes) for r in result.runs}
+    assert all(rare[("mislabelled", s)] < rare[("real", s)] - 0.1 for s in (0, 1))

@@ -92,20 +92,7 @@ def evaluate(ground_truth: Mapping[str, Any], results: Sequence[Mapping[str, Any
     """
     # COCOeval prints its progress; keep it out of the probe's output.
     with contextlib.redirect_stdout(io.StringIO()):
-        gt = COCO()
-        gt.dataset = copy.deepcopy(dict(ground_truth))
-        gt.createIndex()
-        if results:
-            dt = gt.loadRes([dict(r) for r in results])
-        else:
-            # loadRes cannot take an empty list; an empty result set has no annotations at all
-            dt = COCO()
-            dt.dataset = {
-                "images": list(gt.dataset["images"]),
-                "annotations": [],
-                "categories": gt.dataset["categories"],
-            }
-            dt.createIndex()
+        gt, dt = coco_pair(ground_truth, results)
         scorer = COCOeval(gt, dt, iouType="bbox")
         scorer.evaluate()
         scorer.accumulate()
@@ -120,6 +107,21 @@ def evaluate(ground_truth: Mapping[str, Any], results: Sequence[Mapping[str, Any
         per_ap[names[category_id]] = _mean_valid(every)
         per_ap50[names[category_id]] = _mean_valid(at50)
     return Evaluation(float(scorer.stats[0]), float(scorer.stats[1]), per_ap, per_ap50)
+
+
+def coco_pair(ground_truth: Mapping[str, Any], results: Sequence[Mapping[str, Any]]) -> tuple[COCO, COCO]:
+    """pycocotools ``COCO`` objects of a ground truth (deep-copied, so it is not changed) and of results."""
+    with contextlib.redirect_stdout(io.StringIO()):
+        gt = COCO()
+        gt.dataset = copy.deepcopy(dict(ground_truth))
+        gt.createIndex()
+        if results:
+            return gt, gt.loadRes([dict(r) for r in results])
+        # loadRes cannot take an empty list; an empty result set has no annotations at all
+        dt = COCO()
+        dt.dataset = {"images": list(gt.dataset["images"]), "annotations": [], "categories": gt.dataset["categories"]}
+        dt.createIndex()
+        return gt, dt
 
 
 def _mean_valid(values: np.ndarray) -> float | None:

@@ -1,81 +1,56 @@
-"""The downstream probe: does synthetic data help a detector on real held-out data?
+"""The downstream probe: does synthetic data help a detector on real held-out data, and which kind?
 
 For every seed, one detector is trained on each training set and scored on the real test split:
 
 * ``real``: the real training split alone (share 0, the baseline);
-* ``filtered``: the real split merged with the synthetic run folders at each share (pipeline.merge,
-  with the held-out splits guarded);
-* ``unfiltered`` (optional): the same with a run made with permissive plausibility limits, the
-  control that shows what the filters are worth.
+* one condition per arm and share: the real split merged with that arm's synthetic run folders at the
+  share (pipeline.merge, with the held-out splits guarded). Typical arms, made from one plan so that
+  only the tested thing differs: ``paste`` (the same exemplars at the same places, alpha-pasted: the
+  classic copy-paste baseline), ``exemplar`` (exemplar-guided insertion, filtered), ``exemplar-unfiltered``
+  (the same with the filters off: what the filters are worth) and ``generated`` (class-conditional drawing).
 
 Every model gets the same number of optimiser steps (``epochs`` passes over the *real* split, or a
 wall-time budget turned into steps once by timing), so a larger merged set does not also buy more
 training. The seed drives the weights, the batches, the flips and the choice of synthetic images.
+Confidence intervals come from :mod:`.bootstrap` (see :mod:`.compare`).
 """
 
 from __future__ import annotations
 
-import hashlib
-import json
 import math
-import multiprocessing
 import os
-import time
-from collections.abc import Callable, Iterator, Mapping, Sequence
-from concurrent.futures import ProcessPoolExecutor, as_completed
-from dataclasses import asdict, dataclass, replace
+import re
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
 import numpy as np
-import torch
 
-from ..dataset import load_dataset, to_coco
-from ..errors import DatasetError, RunError, UsageError
-from ..files import write_json_atomic
+from ..dataset import load_dataset
+from ..errors import DatasetError, UsageError
 from ..merge import merge
-from ..provenance import file_sha256
-from .evaluation import Evaluation, detections_to_coco, evaluate
-from .training import Prepared, TrainSettings, predict, prepare, train_detector
+from .evaluation import Evaluation
+from .jobs import Job, ProbeRun, condition_name, in_parallel, record_file, reuse, run_key, seconds_per_step, train_job
+from .training import TrainSettings
 
-KINDS = ("real", "filtered", "unfiltered")
-CALIBRATION_STEPS = 6
-"""Steps timed to turn a wall-time budget into a step count (the first two are left out as warm-up)."""
+ARM_NAME = re.compile(r"[A-Za-z0-9_-]+")
+"""What an arm may be called (it names files below the probe folder)."""
 
 
 @dataclass(frozen=True)
-class ProbeRun:
-    """One trained and scored model."""
+class Preset:
+    """Default seeds, shares, epochs and bootstrap replicates of a probe."""
 
-    kind: str
-    share: float
-    seed: int
-    train_images: int
-    synthetic_images: int
-    reached_share: float
-    steps: int
-    train_seconds: float
-    first_loss: float
-    final_loss: float
-    evaluation: Evaluation
+    seeds: int
+    shares: tuple[float, ...]
+    epochs: float
+    resamples: int
 
-    @property
-    def condition(self) -> str:
-        """``real``, or ``kind@share`` (see :func:`condition_name`)."""
-        return condition_name(self.kind, self.share)
 
-    def to_dict(self) -> dict[str, Any]:
-        """JSON-ready form, with the condition name; :meth:`from_dict` reads it back."""
-        out = asdict(self)
-        out["evaluation"] = self.evaluation.to_dict()
-        out["condition"] = self.condition
-        return out
-
-    @classmethod
-    def from_dict(cls, raw: Mapping[str, Any]) -> ProbeRun:
-        """Inverse of :meth:`to_dict`."""
-        fields = {k: v for k, v in raw.items() if k not in ("condition", "evaluation")}
-        return cls(**fields, evaluation=Evaluation(**raw["evaluation"]))
+def preset(quick: bool) -> Preset:
+    """The full probe (about 40 minutes for four arms on 2 cores), or ``quick`` (about 10: a rough answer)."""
+    return Preset(3, (0.0, 0.5), 15.0, 300) if quick else Preset(5, (0.0, 0.25, 0.5), 30.0, 1000)
 
 
 @dataclass(frozen=True)
@@ -91,11 +66,6 @@ class ProbeResult:
     inputs: Mapping[str, Any]
 
 
-def condition_name(kind: str, share: float) -> str:
-    """``real`` for the baseline, else ``kind@share`` (e.g. ``filtered@0.25``)."""
-    return "real" if kind == "real" else f"{kind}@{share:g}"
-
-
 def rare_ap50(evaluation: Evaluation, rare: Sequence[str]) -> float | None:
     """Mean AP50 over the rare classes that have test instances (``None`` if none has)."""
     values = [evaluation.per_class_ap50.get(name) for name in rare]
@@ -108,11 +78,11 @@ def run_probe(
     *,
     test_json: str | os.PathLike[str],
     guards: Sequence[str | os.PathLike[str]],
-    synthetic: Sequence[str | os.PathLike[str]],
+    arms: Mapping[str, Sequence[str | os.PathLike[str]]],
     out: str | os.PathLike[str],
-    unfiltered: str | os.PathLike[str] | None = None,
+    baseline: str | None = None,
     shares: Sequence[float] = (0.0, 0.25, 0.5),
-    seeds: int = 3,
+    seeds: int = 5,
     epochs: float | None = None,
     minutes: float | None = None,
     settings: TrainSettings | None = None,
@@ -121,7 +91,7 @@ def run_probe(
     threads: int | None = None,
     progress: Callable[[str], None] | None = None,
 ) -> ProbeResult:
-    """Train and score detectors on real, real + filtered synthetic and real + unfiltered synthetic data.
+    """Train and score detectors on the real split alone and on the real split plus each arm's synthetic data.
 
     Parameters
     ----------
@@ -131,14 +101,16 @@ def run_probe(
         The real held-out split every model is scored on; it is also guarded in the merges.
     guards : sequence of path
         Further held-out splits to keep out of training (e.g. val).
-    synthetic : sequence of path
-        Run folders of ``rarefill run`` made with the normal (filtering) limits.
+    arms : mapping of str to sequence of path
+        Arm name -> the run folders of ``rarefill run`` whose images that arm adds (e.g. ``paste``,
+        ``exemplar``, ``exemplar-unfiltered``, ``generated``). Make the arms from one plan (the same
+        recipe seed, data set and jobs), so that only what is tested differs between them.
     out : path
         Folder for ``sets/`` (merged COCO files with hard links to the images) and ``runs/`` (one JSON
-        per trained model). A run whose JSON exists with the same inputs and settings is not trained
-        again, so an interrupted probe continues where it stopped.
-    unfiltered : path, optional
-        A run folder made with permissive limits (see ``recipes/demo-unfiltered.toml``).
+        per trained model, its test detections beside it). A model whose record exists with the same
+        inputs and settings is not trained again, so an interrupted probe continues where it stopped.
+    baseline : str, optional
+        An arm that every other arm is also compared with (e.g. ``paste``, the copy-paste control).
     shares : sequence of float
         Synthetic shares of the merged training images, each in [0, 1); 0 is the real-only baseline,
         which is always trained.
@@ -190,13 +162,7 @@ def run_probe(
         threads = max(1, (os.cpu_count() or 1) // workers)
     if not isinstance(threads, int) or threads < 1:
         raise UsageError(f"--threads must be an integer >= 1, got {threads!r}")
-    if not synthetic:
-        raise UsageError("give at least one synthetic run folder (--synthetic RUN_DIR)")
-    for folder in [*synthetic, *([unfiltered] if unfiltered is not None else [])]:
-        if not (Path(folder) / "labels.json").is_file():
-            raise UsageError(
-                f"{folder} is not a run folder (no labels.json)", hint="pass a folder `rarefill run` wrote"
-            )
+    arms = check_arms(arms, baseline)
     test_path = Path(test_json).resolve()
     if test_path == Path(real_json).resolve():
         raise UsageError(f"--test {test_json} is also the training split (--real); score on a held-out split")
@@ -205,8 +171,6 @@ def run_probe(
             f"--test {test_json} is also given as --guard",
             hint="the test split is always guarded; drop it from --guard",
         )
-    if unfiltered is not None and Path(unfiltered).resolve() in {Path(s).resolve() for s in synthetic}:
-        raise UsageError(f"--unfiltered {unfiltered} is also given as --synthetic; the control must differ")
     settings = settings or TrainSettings(steps=1)
     out = Path(out)
 
@@ -225,21 +189,18 @@ def run_probe(
     rare = tuple(name for name in class_names if counts[name] < rare_below)
 
     # 3. make the training sets (seed-major, so the first results already pair up)
-    conditions = [("real", 0.0)] + [(kind, s) for kind in ("filtered", "unfiltered") for s in shares if s > 0]
-    if unfiltered is None:
-        conditions = [c for c in conditions if c[0] != "unfiltered"]
-    runs_by_kind = {"filtered": [Path(s) for s in synthetic], "unfiltered": [Path(unfiltered)] if unfiltered else []}
+    conditions = [("real", 0.0)] + [(arm, s) for arm in arms for s in shares if s > 0]
     held_out = [Path(test_json), *map(Path, guards)]
-    jobs: list[_Job] = []
+    jobs: list[Job] = []
     for seed in range(seeds):
-        for kind, share in conditions:
-            if kind == "real":
+        for arm, share in conditions:
+            if arm == "real":
                 set_file, images_dir, n_syn, reached = Path(real_json), real.images_dir, 0, 0.0
             else:
-                set_file = out / "sets" / f"{kind}-{share:g}-seed{seed}.json"
+                set_file = out / "sets" / f"{arm}-{share:g}-seed{seed}.json"
                 summary = merge(
                     real_json,
-                    synthetic=runs_by_kind[kind],
+                    synthetic=arms[arm],
                     guards=held_out,
                     out=set_file,
                     synthetic_share=share,
@@ -247,11 +208,10 @@ def run_probe(
                     seed=seed,
                 )
                 images_dir, n_syn, reached = set_file.parent, summary.synthetic_selected, summary.share
-            name = condition_name(kind, share)
-            record = out / "runs" / f"{name}-seed{seed}.json"
+            record = record_file(out, condition_name(arm, share), seed)
             jobs.append(
-                _Job(kind, share, seed, str(set_file), str(images_dir), str(test_json), class_names, settings,
-                     n_syn, reached, str(record))
+                Job(arm, share, seed, str(set_file), str(images_dir), str(test_json), class_names, settings,
+                    n_syn, reached, str(record))
             )  # fmt: skip
     say(f"made {len(jobs)} training sets in {out / 'sets'}")
 
@@ -260,7 +220,7 @@ def run_probe(
         steps = math.ceil(epochs * len(real.scenes) / settings.batch_size)
     else:
         # time as many models side by side as will train side by side
-        timings = [t for _, t in _in_parallel(_seconds_per_step, [jobs[0]] * workers, workers, threads)]
+        timings = [t for _, t in in_parallel(seconds_per_step, [jobs[0]] * workers, workers, threads)]
         seconds = float(np.mean(timings))
         steps = max(1, math.floor(minutes * 60 / seconds))
         say(f"timed {seconds:.2f} s per step: {steps} steps per model for {minutes:g} min")
@@ -268,11 +228,11 @@ def run_probe(
     jobs = [replace(job, settings=settings) for job in jobs]
 
     # 5. train and score (models already trained with the same inputs are read back)
-    runs: list[ProbeRun | None] = [_reuse(Path(job.record), _run_key(job)) for job in jobs]
+    runs: list[ProbeRun | None] = [reuse(Path(job.record), run_key(job)) for job in jobs]
     if any(runs):
         say(f"reusing {sum(r is not None for r in runs)} model(s) trained before with the same inputs")
     todo = [i for i, run in enumerate(runs) if run is None]
-    for k, run in _in_parallel(_train_job, [jobs[i] for i in todo], workers, threads):
+    for k, run in in_parallel(train_job, [jobs[i] for i in todo], workers, threads):
         runs[todo[k]] = run
         say(
             f"[{sum(r is not None for r in runs)}/{len(jobs)}] {run.condition}, seed {run.seed}: "
@@ -283,14 +243,69 @@ def run_probe(
         "real": str(real_json),
         "test": str(test_json),
         "guards": [str(g) for g in guards],
-        "synthetic": [str(s) for s in synthetic],
-        "unfiltered": None if unfiltered is None else str(unfiltered),
+        "arms": {arm: [str(f) for f in folders] for arm, folders in arms.items()},
+        "baseline": baseline,
+        "out": str(out),
         "real_instances": counts,
         "rare_below": rare_below,
     }
     return ProbeResult(
         tuple(r for r in runs if r is not None), class_names, rare, settings, shares, tuple(range(seeds)), inputs
     )
+
+
+def check_arms(
+    arms: Mapping[str, Sequence[str | os.PathLike[str]]], baseline: str | None
+) -> dict[str, tuple[Path, ...]]:
+    """The arms as name -> run folders, checked: names of our own, run folders that exist, none shared.
+
+    Raises
+    ------
+    UsageError
+        No arm; a name that is ``real``, empty or not made of letters, digits, ``-`` and ``_``; an arm
+        without folders; a folder that is no run folder or is given in two arms; a baseline that is no arm.
+    """
+    if not arms:
+        raise UsageError("give at least one arm (--arm NAME=RUN_DIR)")
+    checked: dict[str, tuple[Path, ...]] = {}
+    owner: dict[Path, str] = {}
+    for name, folders in arms.items():
+        if name == "real" or not ARM_NAME.fullmatch(name):
+            raise UsageError(
+                f"arm name {name!r}: use letters, digits, - and _ (and not 'real', the real-only baseline)"
+            )
+        if not folders:
+            raise UsageError(f"arm {name!r} has no run folder")
+        for folder in map(Path, folders):
+            if not (folder / "labels.json").is_file():
+                raise UsageError(
+                    f"{folder} is not a run folder (no labels.json)", hint="pass a folder `rarefill run` wrote"
+                )
+            key = folder.resolve()
+            if key in owner:
+                raise UsageError(f"{folder} is given in arm {owner[key]!r} and in arm {name!r}; arms must differ")
+            owner[key] = name
+        checked[name] = tuple(map(Path, folders))
+    if baseline is not None and baseline not in checked:
+        raise UsageError(f"--baseline {baseline!r} is not one of the arms ({', '.join(checked)})")
+    return checked
+
+
+def parse_arms(items: Sequence[str]) -> dict[str, list[Path]]:
+    """``["paste=outputs/a", "paste=outputs/b", "exemplar=outputs/c"]`` -> ``{"paste": [a, b], "exemplar": [c]}``.
+
+    Raises
+    ------
+    UsageError
+        An item without ``=``.
+    """
+    arms: dict[str, list[Path]] = {}
+    for item in items:
+        name, sep, folder = item.partition("=")
+        if not sep or not name or not folder:
+            raise UsageError(f"--arm must look like NAME=RUN_DIR (e.g. paste=outputs/paste), got {item!r}")
+        arms.setdefault(name, []).append(Path(folder))
+    return arms
 
 
 def parse_shares(text: str) -> tuple[float, ...]:
@@ -320,116 +335,6 @@ def _check_shares(shares: Sequence[float]) -> tuple[float, ...]:
     if len(set(values)) != len(values):
         raise UsageError(f"--shares: a share is given twice in {', '.join(f'{s:g}' for s in values)}")
     return tuple(sorted(values))
-
-
-@dataclass(frozen=True)
-class _Job:
-    """One model to train: everything a worker process needs, as plain picklable values."""
-
-    kind: str
-    share: float
-    seed: int
-    set_file: str
-    images_dir: str
-    test_json: str
-    class_names: tuple[str, ...]
-    settings: TrainSettings
-    synthetic_images: int
-    reached_share: float
-    record: str
-
-
-def _init_worker(threads: int) -> None:
-    torch.set_num_threads(threads)
-
-
-def _in_parallel(function: Callable[[_Job], Any], jobs: Sequence[_Job], workers: int, threads: int) -> Iterator:
-    """Yield ``(index, function(job))`` as each call finishes, in ``workers`` spawned processes with
-    ``threads`` torch threads each; one worker runs the calls in order in this process."""
-    if workers == 1:
-        before = torch.get_num_threads()
-        torch.set_num_threads(threads)
-        try:
-            for i, job in enumerate(jobs):
-                yield i, function(job)
-        finally:
-            torch.set_num_threads(before)
-        return
-    context = multiprocessing.get_context("spawn")
-    pool = ProcessPoolExecutor(workers, mp_context=context, initializer=_init_worker, initargs=(threads,))
-    try:
-        futures = {pool.submit(function, job): i for i, job in enumerate(jobs)}
-        for future in as_completed(futures):
-            yield futures[future], future.result()
-    finally:
-        # on an error, do not wait for the queued models
-        pool.shutdown(wait=False, cancel_futures=True)
-
-
-def _load(job: _Job) -> tuple[Prepared, Prepared, dict[str, Any], list[int]]:
-    train = load_dataset(job.set_file, job.images_dir)
-    test = load_dataset(job.test_json)
-    scale = job.settings.input_scale
-    test_ids = [test.category_by_name(name).id for name in job.class_names]
-    return (
-        prepare(train, job.class_names, input_scale=scale),
-        prepare(test, job.class_names, input_scale=scale),
-        to_coco(test),
-        test_ids,
-    )
-
-
-def _seconds_per_step(job: _Job) -> float:
-    data = _load(job)[0]
-    stamps: list[float] = []
-    settings = replace(job.settings, steps=CALIBRATION_STEPS)
-    train_detector(data, settings=settings, rng=0, progress=lambda *_: stamps.append(time.perf_counter()))
-    return (stamps[-1] - stamps[1]) / (len(stamps) - 2)
-
-
-def _train_job(job: _Job) -> ProbeRun:
-    data, test_data, test_truth, test_ids = _load(job)
-    detector = train_detector(data, settings=job.settings, rng=job.seed)
-    if not all(math.isfinite(v) for v in detector.losses):
-        name = condition_name(job.kind, job.share)
-        raise RunError(f"training diverged ({name}, seed {job.seed}): the loss is not finite")
-    results = detections_to_coco(predict(detector, test_data), test_data.image_ids, test_ids)
-    run = ProbeRun(
-        kind=job.kind,
-        share=job.share,
-        seed=job.seed,
-        train_images=len(data.images),
-        synthetic_images=job.synthetic_images,
-        reached_share=job.reached_share,
-        steps=job.settings.steps,
-        train_seconds=detector.seconds,
-        first_loss=detector.losses[0],
-        final_loss=float(np.mean(detector.losses[-max(1, len(detector.losses) // 20) :])),
-        evaluation=evaluate(test_truth, results),
-    )
-    write_json_atomic(job.record, {"key": _run_key(job), "run": run.to_dict()}, indent=1)
-    return run
-
-
-def _run_key(job: _Job) -> str:
-    """What a trained model depends on: its training set's bytes, the settings, the seed, the test split."""
-    parts = {
-        "set": file_sha256(job.set_file),
-        "settings": asdict(job.settings),
-        "seed": job.seed,
-        "test": file_sha256(job.test_json),
-    }
-    return hashlib.sha256(json.dumps(parts, sort_keys=True).encode()).hexdigest()
-
-
-def _reuse(record: Path, key: str) -> ProbeRun | None:
-    if not record.is_file():
-        return None
-    try:
-        raw = json.loads(record.read_text(encoding="utf-8"))
-        return ProbeRun.from_dict(raw["run"]) if raw.get("key") == key else None
-    except (json.JSONDecodeError, KeyError, TypeError):
-        return None
 
 
 def _fmt(value: float | None) -> str:

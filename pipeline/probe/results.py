@@ -1,10 +1,10 @@
-"""Summarise a probe: mean and spread per condition over seeds, as JSON, a markdown table and a plot."""
+"""Summarise a probe: per condition the spread over seeds and bootstrap intervals, as JSON, markdown and a plot."""
 
 from __future__ import annotations
 
 import io
 import os
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import asdict, dataclass
 from pathlib import Path
 from typing import Any
@@ -14,9 +14,10 @@ from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 
 from ..files import write_bytes_atomic, write_json_atomic
+from .compare import Comparison, compare
 from .experiment import ProbeResult, ProbeRun, rare_ap50
 
-_COLOURS = {"real": "black", "filtered": "tab:blue", "unfiltered": "tab:red"}
+_PALETTE = ("tab:blue", "tab:orange", "tab:green", "tab:red", "tab:purple", "tab:brown", "tab:pink", "tab:olive")
 
 
 @dataclass(frozen=True)
@@ -45,12 +46,12 @@ def spread(values: Sequence[float | None]) -> Spread:
 
 
 def summarise(result: ProbeResult) -> list[dict[str, Any]]:
-    """One row per condition (``real`` first, then by kind and share) with each metric's spread over seeds.
+    """One row per condition (``real`` first, then by arm and share) with each metric's spread over seeds.
 
     ``rare_ap50_gain`` pairs each run with the ``real`` run of the same seed (same initial weights and
     batch order of the real images), which removes most seed-to-seed noise from the comparison.
     """
-    baseline = {r.seed: rare_ap50(r.evaluation, result.rare_classes) for r in result.runs if r.kind == "real"}
+    baseline = {r.seed: rare_ap50(r.evaluation, result.rare_classes) for r in result.runs if r.arm == "real"}
     rows = []
     for condition in dict.fromkeys(r.condition for r in result.runs):
         runs = [r for r in result.runs if r.condition == condition]
@@ -61,7 +62,7 @@ def summarise(result: ProbeResult) -> list[dict[str, Any]]:
         rows.append(
             {
                 "condition": condition,
-                "kind": runs[0].kind,
+                "arm": runs[0].arm,
                 "share": runs[0].share,
                 "seeds": [r.seed for r in runs],
                 "reached_share": spread([r.reached_share for r in runs]),
@@ -79,8 +80,10 @@ def summarise(result: ProbeResult) -> list[dict[str, Any]]:
     return rows
 
 
-def markdown_table(result: ProbeResult, rows: Sequence[dict[str, Any]]) -> str:
-    """The summary as a markdown table (mean ± sd over seeds); rare classes are starred."""
+def markdown_table(
+    result: ProbeResult, rows: Sequence[dict[str, Any]], comparisons: Mapping[str, Comparison] | None = None
+) -> str:
+    """The summary as markdown: a table of means over seeds, and one of bootstrap intervals where given."""
     classes = [f"{name}*" if name in result.rare_classes else name for name in result.class_names]
     header = ["condition", "synthetic share", "images (syn)", "AP", "AP50", "rare AP50", "rare AP50 gain", *classes]
     lines = ["| " + " | ".join(header) + " |", "|" + "---|" * len(header)]
@@ -92,7 +95,7 @@ def markdown_table(result: ProbeResult, rows: Sequence[dict[str, Any]]) -> str:
             row["ap"].text(),
             row["ap50"].text(),
             row["rare_ap50"].text(),
-            "-" if row["kind"] == "real" else row["rare_ap50_gain"].text(),
+            "-" if row["arm"] == "real" else row["rare_ap50_gain"].text(),
             *(row["per_class_ap50"][name].text() for name in result.class_names),
         ]
         lines.append("| " + " | ".join(cells) + " |")
@@ -104,27 +107,68 @@ def markdown_table(result: ProbeResult, rows: Sequence[dict[str, Any]]) -> str:
         "Gain: rare AP50 minus the real-only model's of the same seed. "
         f"Every model: {result.settings.steps} steps of batch {result.settings.batch_size}."
     )
+    if comparisons:
+        lines += ["", *_interval_table(result, comparisons)]
     return "\n".join(lines) + "\n"
 
 
-def save_share_plot(result: ProbeResult, rows: Sequence[dict[str, Any]], path: str | os.PathLike[str]) -> None:
+def _interval_table(result: ProbeResult, comparisons: Mapping[str, Comparison]) -> list[str]:
+    baseline = result.inputs.get("baseline")
+    first = next(iter(comparisons.values())).level["rare_ap50"]
+    header = ["condition", "rare AP50", "rare AP", "rare AP50 - real", "rare AP - real"]
+    if baseline:
+        header += [f"rare AP50 - {baseline}", f"rare AP - {baseline}"]
+    lines = ["| " + " | ".join(header) + " |", "|" + "---|" * len(header)]
+    for c in comparisons.values():
+        cells = [c.condition, _level(c.level["rare_ap50"]), _level(c.level["rare_ap"])]
+        cells += [_difference(c.vs_real, m) for m in ("rare_ap50", "rare_ap")]
+        if baseline:
+            cells += [_difference(c.vs_baseline, m) for m in ("rare_ap50", "rare_ap")]
+        lines.append("| " + " | ".join(cells) + " |")
+    lines += [
+        "",
+        f"Estimate on all test images and seeds [{first.level:.0%} interval]: paired bootstrap "
+        f"({first.resamples} replicates) that draws the test images and the seeds with replacement, the same "
+        "draw for both sides of a difference (Efron and Tibshirani, An Introduction to the Bootstrap, 1993). "
+        "A difference whose interval excludes 0 is marked **.",
+    ]
+    return lines
+
+
+def _level(interval) -> str:
+    return f"{interval.estimate:.3f} [{interval.low:.3f}, {interval.high:.3f}]"
+
+
+def _difference(intervals: Mapping[str, Any] | None, metric: str) -> str:
+    if intervals is None:
+        return "-"
+    interval = intervals[metric]
+    return f"**{interval.text()}**" if interval.excludes_zero() else interval.text()
+
+
+def save_share_plot(
+    result: ProbeResult,
+    rows: Sequence[dict[str, Any]],
+    path: str | os.PathLike[str],
+    comparisons: Mapping[str, Comparison] | None = None,
+) -> None:
     """Rare-class AP50 against synthetic share: one panel for their mean and one per rare class.
 
-    Lines join the means per kind (starting at the real-only model, share 0), drawn at the share each
-    merge reached (below the requested one when too few synthetic images existed); error bars are one
-    sample sd; small dots are the single seeds.
+    Lines join each arm's means (starting at the real-only model, share 0), drawn at the share each merge
+    reached (below the requested one when too few synthetic images existed); on the first panel, error
+    bars are the bootstrap intervals where given, else one sample sd; small dots are the single seeds.
     """
     panels = [("rare classes (mean)", None), *((name, name) for name in result.rare_classes)]
     figure = Figure(figsize=(4.2 * len(panels), 3.6), layout="constrained")
     FigureCanvasAgg(figure)
     axes = figure.subplots(1, len(panels), squeeze=False)[0]
-    real_rows = [row for row in rows if row["kind"] == "real"]
+    real_rows = [row for row in rows if row["arm"] == "real"]
+    arms = list(dict.fromkeys(row["arm"] for row in rows if row["arm"] != "real"))
     for ax, (title, name) in zip(axes, panels, strict=True):
-        for kind in ("filtered", "unfiltered"):
-            kind_rows = real_rows + [row for row in rows if row["kind"] == kind]
-            if len(kind_rows) <= len(real_rows):
-                continue
-            _plot_kind(ax, result, kind, kind_rows, name)
+        for k, arm in enumerate(arms):
+            arm_rows = real_rows + [row for row in rows if row["arm"] == arm]
+            colour = _PALETTE[k % len(_PALETTE)]
+            _plot_arm(ax, result, arm, arm_rows, name, colour, comparisons if name is None else None)
         ax.set_title(title)
         ax.set_xlabel("synthetic share of training images")
         ax.set_ylabel("AP50 on the real test split")
@@ -136,36 +180,56 @@ def save_share_plot(result: ProbeResult, rows: Sequence[dict[str, Any]], path: s
     write_bytes_atomic(path, buffer.getvalue())
 
 
-def _plot_kind(ax, result: ProbeResult, kind: str, rows: Sequence[dict[str, Any]], name: str | None) -> None:
+def _plot_arm(
+    ax,
+    result: ProbeResult,
+    arm: str,
+    rows: Sequence[dict[str, Any]],
+    name: str | None,
+    colour: str,
+    comparisons: Mapping[str, Comparison] | None,
+) -> None:
     def value(run: ProbeRun) -> float | None:
         return rare_ap50(run.evaluation, result.rare_classes) if name is None else run.evaluation.per_class_ap50[name]
 
-    shares, means, sds = [], [], []
+    shares, means, below, above = [], [], [], []
     for row in rows:
         metric = row["rare_ap50"] if name is None else row["per_class_ap50"][name]
         if metric.mean is None:
             continue
         shares.append(row["reached_share"].mean)
         means.append(metric.mean)
-        sds.append(metric.sd or 0.0)
-    colour = _COLOURS[kind]
-    ax.errorbar(shares, means, yerr=sds, color=colour, marker="o", capsize=3, label=f"real + {kind} synthetic")
+        if comparisons is not None and row["condition"] in comparisons:
+            interval = comparisons[row["condition"]].level["rare_ap50"]
+            below.append(max(0.0, metric.mean - interval.low))
+            above.append(max(0.0, interval.high - metric.mean))
+        else:
+            below.append(metric.sd or 0.0)
+            above.append(metric.sd or 0.0)
+    ax.errorbar(shares, means, yerr=[below, above], color=colour, marker="o", capsize=3, label=f"real + {arm}")
     for run in result.runs:
-        if run.kind == kind and value(run) is not None:
+        if run.arm == arm and value(run) is not None:
             ax.plot(run.reached_share, value(run), ".", color=colour, alpha=0.35)
-        elif run.kind == "real" and kind == "filtered" and value(run) is not None:
-            ax.plot(0.0, value(run), ".", color=_COLOURS["real"], alpha=0.35)
+        elif run.arm == "real" and value(run) is not None:
+            ax.plot(0.0, value(run), ".", color="black", alpha=0.35)
 
 
-def write_results(result: ProbeResult, out: str | os.PathLike[str]) -> dict[str, Path]:
-    """Write ``results.json``, ``results.md`` and ``rare_ap50.png`` into ``out``; return their paths."""
+def write_results(
+    result: ProbeResult, out: str | os.PathLike[str], *, resamples: int = 1000, level: float = 0.95
+) -> dict[str, Path]:
+    """Write ``results.json``, ``results.md`` and ``rare_ap50.png`` into ``out``; return their paths.
+
+    The bootstrap intervals (``resamples`` replicates; 0 leaves them out) are computed from the detections
+    the probe's models saved below ``result.inputs["out"]``.
+    """
     out = Path(out)
     rows = summarise(result)
+    comparisons = compare(result, resamples=resamples, level=level) if resamples > 0 else None
     paths = {"json": out / "results.json", "markdown": out / "results.md", "plot": out / "rare_ap50.png"}
     write_json_atomic(
         paths["json"],
         {
-            "format": "rarefill.probe/1",
+            "format": "rarefill.probe/2",
             "inputs": dict(result.inputs),
             "class_names": list(result.class_names),
             "rare_classes": list(result.rare_classes),
@@ -173,12 +237,13 @@ def write_results(result: ProbeResult, out: str | os.PathLike[str]) -> dict[str,
             "seeds": list(result.seeds),
             "settings": asdict(result.settings),
             "conditions": [_jsonable(row) for row in rows],
+            "intervals": None if comparisons is None else [c.to_dict() for c in comparisons.values()],
             "runs": [run.to_dict() for run in result.runs],
         },
         indent=1,
     )
-    write_bytes_atomic(paths["markdown"], markdown_table(result, rows).encode("utf-8"))
-    save_share_plot(result, rows, paths["plot"])
+    write_bytes_atomic(paths["markdown"], markdown_table(result, rows, comparisons).encode("utf-8"))
+    save_share_plot(result, rows, paths["plot"], comparisons)
     return paths
 
 
