@@ -162,3 +162,21 @@ def test_insert_height_range_is_read(tmp_path):
         tmp_path, GOOD.replace("objects_per_image = [1, 2]", "objects_per_image = [1, 2]\nheights = [16, 80]")
     )
     assert recipe.stages[0].options["heights"] == (16.0, 80.0)
+
+
+def test_the_probe_arm_recipes_are_one_plan():
+    # The probe compares arms; only what an arm tests may differ between them (issue: copy-paste control).
+    recipes = {p.stem: load_recipe(p) for p in sorted((Path(__file__).parents[1] / "recipes").glob("probe-*.toml"))}
+    assert set(recipes) == {"probe-paste", "probe-exemplar", "probe-exemplar-unfiltered", "probe-generated"}
+    tested = {"appearance", "harmonise"}
+
+    def plan_of(recipe):
+        stages = [(s.kind, s.target_class, s.count, {k: v for k, v in s.options.items() if k not in tested})
+                  for s in recipe.stages]  # fmt: skip
+        return recipe.seed, recipe.dataset, recipe.attempts_per_output, stages
+
+    plans = {name: plan_of(r) for name, r in recipes.items()}
+    assert len({repr(p) for p in plans.values()}) == 1, plans
+    assert recipes["probe-paste"].stages[0].options["harmonise"] is False
+    assert recipes["probe-generated"].stages[0].options["appearance"] == "generated"
+    assert recipes["probe-exemplar"].filters == {} and recipes["probe-exemplar-unfiltered"].filters
