@@ -168,18 +168,7 @@ def sample_box(
         if box[0] < 0 or box[1] < 0 or box[0] + w > scene.width or bottom > scene.height:
             failures["outside_image"] += 1
             continue
-        failed = next(
-            (
-                v.name
-                for v in (
-                    filters.surface(box, surface.mask, limits),
-                    filters.overlap(box, others, limits),
-                    filters.gap(box, others, ground, limits, focal_px=focal, image_id=scene.id),
-                )
-                if not v
-            ),
-            None,
-        )
+        failed = _first_failure(box, surface, others, others, ground, limits, focal, scene.id)
         if failed is not None:
             failures[failed] += 1
             continue
@@ -267,18 +256,7 @@ def place_at_height(
         if max_hidden < 1.0 and _covered(box, nearer) > max_hidden:
             failures["occlusion"] += 1
             continue
-        failed = next(
-            (
-                v.name
-                for v in (
-                    filters.surface(box, surface.mask, limits),
-                    filters.overlap(box, () if exact_pixels else others, limits),
-                    filters.gap(box, others, ground, limits, focal_px=focal, image_id=scene.id),
-                )
-                if not v
-            ),
-            None,
-        )
+        failed = _first_failure(box, surface, () if exact_pixels else others, others, ground, limits, focal, scene.id)
         if failed is not None:
             failures[failed] += 1
             continue
@@ -308,3 +286,15 @@ def _truncated_normal(rng: np.random.Generator, bound: float) -> float:
         z = float(rng.standard_normal())
         if abs(z) <= bound:
             return z
+
+
+def _first_failure(box, surface, overlapping, others, ground, limits, focal: float, image_id: int) -> str | None:
+    """The name of the first placement filter ``box`` fails (surface, overlap with ``overlapping``, gap), or None."""
+    for verdict in (
+        filters.surface(box, surface.mask, limits),
+        filters.overlap(box, overlapping, limits),
+        filters.gap(box, others, ground, limits, focal_px=focal, image_id=image_id),
+    ):
+        if not verdict:
+            return verdict.name
+    return None

@@ -22,7 +22,6 @@ ALLOWED_MODULES = {
 ALLOWED_FUNCTIONS = {
     "audit/core.py::audit_run": "landed with the issue-13 realism audit; no split planned yet",
     "generator/train.py::fit": "being changed by the issue-14 (model) helper",
-    "placement.py::sample_box": "no split planned yet",
     "probe/experiment.py::run_probe": "no split planned yet",
 }
 
