@@ -149,11 +149,7 @@ def irls(
     camera_col, horizon_col = layout.columns()
     for _ in range(iterations):
         state = _State(horizons, log_ratio, log_camera, offsets)
-        residual = _joint_residuals(boxes, group, state)
-        scale = max(1.4826 * float(np.nanmedian(np.abs(residual))), 1e-3)
-        weights = _tukey(residual, scale)
-        penalty = (scale / tau[layout.image_group]) ** 2
-        system = _normal_system(boxes, layout, state, residual, weights, penalty, scale**2)
+        residual, scale, weights, system = _reweighted(boxes, layout, group, state, tau)
         if system is None:
             break
         step_global, step_offsets, offset_var, _ = system
@@ -174,11 +170,7 @@ def irls(
         if shrink * max(np.max(np.abs(step_global)), np.max(np.abs(step_offsets), initial=0.0)) < 1e-7:
             break
     state = _State(horizons, log_ratio, log_camera, offsets)
-    residual = _joint_residuals(boxes, group, state)
-    scale = max(1.4826 * float(np.nanmedian(np.abs(residual))), 1e-3)
-    weights = _tukey(residual, scale)
-    penalty = (scale / tau[layout.image_group]) ** 2
-    system = _normal_system(boxes, layout, state, residual, weights, penalty, scale**2)
+    residual, scale, weights, system = _reweighted(boxes, layout, group, state, tau)
     leverage = system[3] if system is not None else np.zeros(len(residual))
     # Leave-one-out residuals: a box's own image offset partly absorbs its residual, which would make
     # the spread too small for a new object in that image.
@@ -274,3 +266,13 @@ def _normal_system(
         + q * q * offset_var[boxes.image]
     )
     return step_global, step_offsets, offset_var, w * quad
+
+
+def _reweighted(boxes, layout, group, state, tau):
+    """One reweighting of the robust fit at ``state``: residuals, their robust scale (1.4826 MAD), the Tukey
+    weights, and the normal system with each image offset's shrinkage penalty (None when singular)."""
+    residual = _joint_residuals(boxes, group, state)
+    scale = max(1.4826 * float(np.nanmedian(np.abs(residual))), 1e-3)
+    weights = _tukey(residual, scale)
+    penalty = (scale / tau[layout.image_group]) ** 2
+    return residual, scale, weights, _normal_system(boxes, layout, state, residual, weights, penalty, scale**2)
