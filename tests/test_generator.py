@@ -299,6 +299,17 @@ def test_inpaint_is_deterministic_per_seed_and_batch_independent(tiny_model, sce
     assert not np.array_equal(again, other)
 
 
+@pytest.mark.parametrize("native", [True, False])
+def test_bf16_autocast_is_used_only_where_the_cpu_computes_bf16(tiny_model, monkeypatch, native):
+    # Without native bf16 (an AVX2-only CPU) torch's bf16 convolutions take a slow reference path, many
+    # times slower than float32, so the default follows the CPU; an explicit choice still wins.
+    from pipeline.generator import sample
+
+    monkeypatch.setattr(sample, "native_bf16", lambda: native)
+    assert sample.load_trained(tiny_model).use_bf16 is native
+    assert sample.load_trained(tiny_model, use_bf16=not native).use_bf16 is (not native)
+
+
 def test_save_load_round_trip_gives_identical_samples(tiny_model, scenes, tmp_path, monkeypatch):
     import shutil
 

@@ -26,7 +26,7 @@ from diffusers import DDPMScheduler, UNet2DModel
 
 from ..errors import ModelError
 from .exemplar import EXEMPLAR_IN_CHANNELS, PLAIN_IN_CHANNELS, conditioning
-from .model import FORMAT, FORMAT_VERSION, METADATA, NULL_LABEL, model_loading_options, sampling_scheduler
+from .model import FORMAT, FORMAT_VERSION, METADATA, NULL_LABEL, model_loading_options, native_bf16, sampling_scheduler
 from .request import InpaintRequest, check_request
 from .windows import Window, context_window, crop_window, paste_window, window_mask
 
@@ -57,8 +57,9 @@ class DiffusionGenerator:
         Object classes it can draw.
     folder : Path or None
         Where it was loaded from; ``folder_hash`` is the sha256 of its weights and configs.
-    use_bf16 : bool
-        Run the UNet under bfloat16 autocast (faster on CPUs with native bf16).
+    use_bf16 : bool or None
+        Run the UNet under bfloat16 autocast; None (the default) does so only on a CPU with native bf16,
+        where it is faster (elsewhere it is many times slower than float32).
     """
 
     def __init__(
@@ -70,7 +71,7 @@ class DiffusionGenerator:
         classes: Sequence[str],
         folder: Path | None = None,
         folder_hash: str | None = None,
-        use_bf16: bool = True,
+        use_bf16: bool | None = None,
     ) -> None:
         self.unet = unet.eval().requires_grad_(False)
         self.train_scheduler_config = dict(train_scheduler_config)
@@ -79,7 +80,7 @@ class DiffusionGenerator:
         self.window = int(unet.config.sample_size)
         self.folder = folder
         self.folder_hash = folder_hash
-        self.use_bf16 = use_bf16
+        self.use_bf16 = native_bf16() if use_bf16 is None else bool(use_bf16)
         channels = int(unet.config.in_channels)
         if channels not in (PLAIN_IN_CHANNELS, EXEMPLAR_IN_CHANNELS):
             raise ValueError(
@@ -263,7 +264,7 @@ def folder_sha256(folder: Path, files: Sequence[str]) -> str:
     return digest.hexdigest()
 
 
-def load_trained(folder: str | os.PathLike[str], *, use_bf16: bool = True) -> DiffusionGenerator:
+def load_trained(folder: str | os.PathLike[str], *, use_bf16: bool | None = None) -> DiffusionGenerator:
     """Load a folder written by ``fit`` from local files only.
 
     Raises

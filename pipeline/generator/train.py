@@ -44,6 +44,7 @@ from .model import (
     DenoiserConfig,
     build_unet,
     label_table,
+    native_bf16,
     same_architecture,
     training_scheduler,
     widen_from,
@@ -62,6 +63,7 @@ class TrainSettings:
     draw the masked part; the outside keeps some weight so the fill continues its surroundings).
     ``exemplar_share``: share of the object windows given an exemplar (the rest are drawn from the
     label alone, so one model serves both appearances); unused by a model without exemplar channels.
+    ``use_bf16``: bfloat16 autocast; None (the default) uses it only on a CPU with native bf16.
     """
 
     learning_rate: float = 6e-4
@@ -74,7 +76,7 @@ class TrainSettings:
     outside_weight: float = 0.1
     checkpoint_every: int = 200
     verifier_steps: int = 1500
-    use_bf16: bool = True
+    use_bf16: bool | None = None
     exemplar_share: float = 0.6
 
 
@@ -303,7 +305,8 @@ def _train_step(
     else:
         condition = conditioning(x0, mask)
     model_in = torch.cat([noisy, condition], dim=1)
-    with torch.autocast("cpu", dtype=torch.bfloat16, enabled=settings.use_bf16):
+    bf16 = native_bf16() if settings.use_bf16 is None else settings.use_bf16
+    with torch.autocast("cpu", dtype=torch.bfloat16, enabled=bf16):
         pred = unet(model_in, t, class_labels=torch.from_numpy(label_ids)).sample
     weight = settings.outside_weight + (settings.mask_weight - settings.outside_weight) * mask
     loss = (weight * (pred.float() - target) ** 2).sum() / (weight.sum() * 3)
