@@ -18,7 +18,6 @@ MAX_FUNCTION_LINES = 100
 ALLOWED_MODULES: dict[str, str] = {}
 ALLOWED_FUNCTIONS = {
     "audit/core.py::audit_run": "landed with the issue-13 realism audit; no split planned yet",
-    "probe/experiment.py::run_probe": "no split planned yet",
 }
 
 
