@@ -247,6 +247,41 @@ def audit_run(
     DatasetError, RunError
         Unreadable inputs, or a held-out split that made synthetic images of the run.
     """
+    # 1. check options
+    _check_options(seed=seed, folds=folds, epochs=epochs, feature_steps=feature_steps, threads=threads)
+    say = progress or (lambda _line: None)
+
+    # 2. the run, its held-out split (which must not have made any of its images) and its training split
+    run = read_run(run_dir)
+    heldout = load_dataset(real, images)
+    check_heldout(run.labels, heldout)
+    train_path = _training_split(run.labels, real, train)
+    train_set = load_dataset(train_path, train_images)
+    groups = _groups(run.labels, heldout, train_set, classes, run.root)
+
+    # 3. the feature network, then the figures of every class
+    with torch_threads(threads):
+        say(f"training the feature network on {train_path} ({feature_steps} steps)")
+        net = feat.train_feature_net(train_set, steps=feature_steps, rng=seed)
+        order = [c.name for c in run.labels.categories]
+        figures = _audit_classes(run.root, groups, net, order, seed=seed, folds=folds, epochs=epochs, say=say)
+
+    # 4. write audit.json
+    result = {
+        "format": FORMAT,
+        "run": str(run.root),
+        "heldout": str(real),
+        "train": str(train_path),
+        "seed": seed,
+        "settings": _settings(folds=folds, epochs=epochs, feature_steps=feature_steps),
+        "model": _model_identity(run.labels),
+        "classes": figures,
+    }
+    write_json_atomic(run.root / AUDIT_JSON, result, indent=2)
+    return result
+
+
+def _check_options(*, seed: int, folds: int, epochs: int, feature_steps: int, threads: int) -> None:
     if folds < 2 or epochs < 1 or feature_steps < 1 or threads < 1:
         raise UsageError(
             f"need folds >= 2, epochs >= 1, feature steps >= 1, threads >= 1; got {folds}, {epochs}, "
@@ -254,58 +289,61 @@ def audit_run(
         )
     if not isinstance(seed, int) or seed < 0:
         raise UsageError(f"--seed must be an integer >= 0, got {seed!r}")
-    say = progress or (lambda _line: None)
-    run = read_run(run_dir)
-    heldout = load_dataset(real, images)
-    check_heldout(run.labels, heldout)
-    train_path = Path(train) if train is not None else find_training_split(run.labels, Path(real).parent, Path(real))
+
+
+def _training_split(labels: Dataset, real: str | os.PathLike[str], train: str | os.PathLike[str] | None) -> Path:
+    """``train`` if given, else the COCO file beside ``real`` that holds the run's source images."""
+    train_path = Path(train) if train is not None else find_training_split(labels, Path(real).parent, Path(real))
     if train_path is None:
         raise UsageError(
             f"no COCO file beside {real} holds the run's source images",
             hint="give the run's training split with --train TRAIN.json",
         )
-    train_set = load_dataset(train_path, train_images)
-    groups = _groups(run.labels, heldout, train_set, classes, run.root)
-    order = [c.name for c in run.labels.categories]
+    return train_path
+
+
+def _audit_classes(
+    root: Path,
+    groups: Mapping[str, tuple[list[Instance], list[Instance], list[Instance]]],
+    net: torch.nn.Module,
+    order: Sequence[str],
+    *,
+    seed: int,
+    folds: int,
+    epochs: int,
+    say: Callable[[str], None],
+) -> dict[str, dict[str, Any]]:
+    """:func:`_audit_class` of every group; a class's seed is ``(seed, its index in order)``, so each
+    class's figures do not depend on which other classes are audited. Images are read once for all."""
     cache: dict[Path, np.ndarray] = {}
-    with torch_threads(threads):
-        say(f"training the feature network on {train_path} ({feature_steps} steps)")
-        net = feat.train_feature_net(train_set, steps=feature_steps, rng=seed)
-        figures = {
-            name: _audit_class(
-                run.root,
-                name,
-                sides,
-                net,
-                cache,
-                folds=folds,
-                epochs=epochs,
-                rng=np.random.default_rng([seed, order.index(name)]),
-                say=say,
-            )
-            for name, sides in groups.items()
-        }
-    result = {
-        "format": FORMAT,
-        "run": str(run.root),
-        "heldout": str(real),
-        "train": str(train_path),
-        "seed": seed,
-        "settings": {
-            "folds": folds,
-            "epochs": epochs,
-            "test_crop_px": TEST_CROP_PX,
-            "feature_crop_px": CROP_PX,
-            "min_height_px": MIN_HEIGHT_PX,
-            "k": feat.K_NEAREST,
-            "feature_steps": feature_steps,
-            "near_copy_quantile": feat.NEAR_COPY_QUANTILE,
-        },
-        "model": _model_identity(run.labels),
-        "classes": figures,
+    return {
+        name: _audit_class(
+            root,
+            name,
+            sides,
+            net,
+            cache,
+            folds=folds,
+            epochs=epochs,
+            rng=np.random.default_rng([seed, order.index(name)]),
+            say=say,
+        )
+        for name, sides in groups.items()
     }
-    write_json_atomic(run.root / AUDIT_JSON, result, indent=2)
-    return result
+
+
+def _settings(*, folds: int, epochs: int, feature_steps: int) -> dict[str, Any]:
+    """The audit's settings as recorded in ``audit.json``, the fixed ones included."""
+    return {
+        "folds": folds,
+        "epochs": epochs,
+        "test_crop_px": TEST_CROP_PX,
+        "feature_crop_px": CROP_PX,
+        "min_height_px": MIN_HEIGHT_PX,
+        "k": feat.K_NEAREST,
+        "feature_steps": feature_steps,
+        "near_copy_quantile": feat.NEAR_COPY_QUANTILE,
+    }
 
 
 def read_audit(run_dir: str | os.PathLike[str]) -> dict[str, Any] | None:

@@ -13,12 +13,10 @@ The finished folder is a diffusers-format model::
 from __future__ import annotations
 
 import copy
-import io
 import json
 import math
 import os
 import platform
-import shutil
 import time
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
@@ -32,10 +30,10 @@ import torch
 from .. import __version__
 from ..dataset import Dataset
 from ..errors import ModelError
-from ..files import write_bytes_atomic, write_json_atomic
 from .batches import make_batch, object_silhouettes
-from .examples import dataset_hash, load_examples
+from .examples import Examples, dataset_hash, load_examples
 from .exemplar import conditioning
+from .folder import CHECKPOINT, earlier_history, earlier_init, export, resume, save_checkpoint, verifier_matches
 from .model import (
     FORMAT,
     FORMAT_VERSION,
@@ -50,9 +48,7 @@ from .model import (
     widen_from,
 )
 from .progress import FitProgress
-from .verifier import VERIFIER_JSON, fit_verifier, save_verifier
-
-CHECKPOINT = "checkpoint.pt"
+from .verifier import fit_verifier, save_verifier
 
 
 @dataclass(frozen=True)
@@ -160,6 +156,70 @@ def fit(
     "Classifier-Free Diffusion Guidance", 2021 (label dropped with p = 0.1).
     """
     # 1. check inputs
+    _check_fit_inputs(steps=steps, minutes=minutes, seed=seed, batch_size=batch_size)
+    config = config or DenoiserConfig()
+    settings = settings or TrainSettings()
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+
+    # 2. data
+    examples = load_examples(dataset)
+    call = _FitCall(examples, dataset_hash(dataset), label_table(examples.classes), config, settings, seed, batch_size)
+
+    # 3. model, optimiser, EMA: fresh or from the checkpoint
+    model = _start_denoiser(call, out / CHECKPOINT, init)
+    scheduler = training_scheduler()
+    alphas = scheduler.alphas_cumprod.float()
+    silhouettes = object_silhouettes(examples) if config.exemplar and settings.exemplar_share > 0 else None
+
+    # 4. the verifier first (retrained only when missing or made from other data): a time budget covers
+    #    both phases, so the denoiser trains for what the verifier leaves of it
+    left = _verifier_first(call, out, minutes, progress)
+
+    # 5. train the denoiser (a fresh one at least one step, so that the folder holds a trained model)
+    seconds = _train_denoiser(
+        model, call, out / CHECKPOINT, alphas, silhouettes, steps=steps, minutes=left, progress=progress
+    )
+
+    # 6. export the EMA weights as a diffusers folder, metadata last: it marks the folder complete
+    budget = {"steps": steps, "minutes": minutes}
+    metadata = _metadata(call, model, out / METADATA, dataset, budget=budget, command=command, seconds=seconds)
+    export(out, model.ema, scheduler, metadata)
+    return FitResult(out, model.step, seconds, model.loss, model.resumed_from)
+
+
+@dataclass(frozen=True)
+class _FitCall:
+    """What one call of :func:`fit` trains on and with, checked."""
+
+    examples: Examples
+    data_hash: str
+    labels: tuple[str, ...]
+    config: DenoiserConfig
+    settings: TrainSettings
+    seed: int
+    batch_size: int
+
+
+@dataclass
+class _Denoiser:
+    """The denoiser in training: its weights, their EMA, the optimiser, and where training stands."""
+
+    unet: torch.nn.Module
+    ema: torch.nn.Module
+    optimizer: torch.optim.Optimizer
+    identity: dict
+    """What a checkpoint must match to be resumed: data, labels, size, seed and warm start."""
+    start: dict | None
+    """What is recorded of the ``init`` folder of a warm start."""
+    step: int
+    loss: float
+    seconds_before: float
+    """Training seconds of the earlier (resumed) runs."""
+    resumed_from: int
+
+
+def _check_fit_inputs(*, steps: int | None, minutes: float | None, seed: int, batch_size: int) -> None:
     if (steps is None) == (minutes is None):
         raise ValueError(f"give exactly one of steps and minutes, got steps={steps}, minutes={minutes}")
     if steps is not None and (not isinstance(steps, int) or steps < 1):
@@ -170,90 +230,119 @@ def fit(
         raise ValueError(f"batch_size must be >= 1, got {batch_size}")
     if not isinstance(seed, int) or seed < 0:
         raise ValueError(f"seed must be an integer >= 0, got {seed!r}")
-    config = config or DenoiserConfig()
-    settings = settings or TrainSettings()
-    out = Path(out_dir)
-    out.mkdir(parents=True, exist_ok=True)
 
-    # 2. data
-    examples = load_examples(dataset)
-    data_hash = dataset_hash(dataset)
-    labels = label_table(examples.classes)
 
-    # 3. model, optimiser, EMA: fresh or from the checkpoint
+def _start_denoiser(call: _FitCall, checkpoint: Path, init: str | os.PathLike[str] | None) -> _Denoiser:
+    """A denoiser seeded by the call's seed (warm-started from ``init``), resumed from ``checkpoint`` if any."""
+    config, labels, seed = call.config, call.labels, call.seed
     with torch.random.fork_rng():
         torch.manual_seed(seed)
         unet = build_unet(config, len(labels))
     start = _warm_start(unet, Path(init), labels, config) if init is not None else None
     ema = copy.deepcopy(unet).requires_grad_(False)
-    optimizer = torch.optim.AdamW(unet.parameters(), lr=settings.learning_rate, weight_decay=0.0)
-    identity = {"data_hash": data_hash, "labels": list(labels), "config": config.to_dict(), "seed": seed}
+    optimizer = torch.optim.AdamW(unet.parameters(), lr=call.settings.learning_rate, weight_decay=0.0)
+    identity = {"data_hash": call.data_hash, "labels": list(labels), "config": config.to_dict(), "seed": seed}
     if start is not None:
         identity["init_sha256"] = start["sha256"]
-    step, loss_value, seconds_before = _resume(out / CHECKPOINT, identity, unet, ema, optimizer)
-    resumed_from = step
-    scheduler = training_scheduler()
-    alphas = scheduler.alphas_cumprod.float()
-    silhouettes = object_silhouettes(examples) if config.exemplar and settings.exemplar_share > 0 else None
+    step, loss, seconds_before = resume(checkpoint, identity, unet, ema, optimizer)
+    return _Denoiser(unet, ema, optimizer, identity, start, step, loss, seconds_before, resumed_from=step)
 
-    # 4. the verifier first (retrained only when missing or made from other data): a time budget covers
-    #    both phases, so the denoiser trains for what the verifier leaves of it
-    verifier_started = time.monotonic()
-    if not _verifier_matches(out, data_hash):
-        verifier = fit_verifier(examples, steps=settings.verifier_steps, rng=seed, progress=progress)
-        save_verifier(verifier, out, data_hash=data_hash)
-    left = None if minutes is None else max(0.0, minutes - (time.monotonic() - verifier_started) / 60.0)
 
-    # 5. train the denoiser (a fresh one at least one step, so that the folder holds a trained model)
+def _verifier_first(
+    call: _FitCall, out: Path, minutes: float | None, progress: Callable[[FitProgress], None] | None
+) -> float | None:
+    """Train and save the verifier unless ``out`` holds one of this data; return what is left of ``minutes``."""
     started = time.monotonic()
-    unet.train()
-    while not _done(step, steps, left, started) or step == 0:
-        lr = settings.learning_rate * min(1.0, (step + 1) / settings.warmup_steps)
-        for group in optimizer.param_groups:
-            group["lr"] = lr
-        loss_value = _train_step(
-            unet, optimizer, examples, labels, alphas, seed, step, batch_size, config, settings, silhouettes
-        )
-        step += 1
-        _update_ema(ema, unet, min(settings.ema_decay, (1 + step) / (10 + step)))
-        if progress is not None:
-            progress(FitProgress("denoiser", step, steps, loss_value, time.monotonic() - started))
-        if step % settings.checkpoint_every == 0:
-            total_seconds = seconds_before + time.monotonic() - started
-            _save_checkpoint(out / CHECKPOINT, identity, unet, ema, optimizer, step, loss_value, total_seconds)
-    seconds = time.monotonic() - started
-    _save_checkpoint(out / CHECKPOINT, identity, unet, ema, optimizer, step, loss_value, seconds_before + seconds)
+    if not verifier_matches(out, call.data_hash):
+        verifier = fit_verifier(call.examples, steps=call.settings.verifier_steps, rng=call.seed, progress=progress)
+        save_verifier(verifier, out, data_hash=call.data_hash)
+    return None if minutes is None else max(0.0, minutes - (time.monotonic() - started) / 60.0)
 
-    # 6. export the EMA weights as a diffusers folder, metadata last: it marks the folder complete
-    history = _history(out / METADATA, data_hash) if resumed_from else []
-    entry = {"command": list(command) if command is not None else None, "steps": [resumed_from, step]}
-    if start is not None and not resumed_from:
-        entry["init"] = start
+
+def _train_denoiser(
+    model: _Denoiser,
+    call: _FitCall,
+    checkpoint: Path,
+    alphas: torch.Tensor,
+    silhouettes: dict | None,
+    *,
+    steps: int | None,
+    minutes: float | None,
+    progress: Callable[[FitProgress], None] | None,
+) -> float:
+    """Train ``model`` to ``steps`` in all or for ``minutes`` (a fresh one at least one step), checkpointing every
+    ``checkpoint_every`` steps and at the end; return the seconds this call trained."""
+    settings = call.settings
+    started = time.monotonic()
+    model.unet.train()
+    while not _done(model.step, steps, minutes, started) or model.step == 0:
+        lr = settings.learning_rate * min(1.0, (model.step + 1) / settings.warmup_steps)
+        for group in model.optimizer.param_groups:
+            group["lr"] = lr
+        model.loss = _train_step(
+            model.unet,
+            model.optimizer,
+            call.examples,
+            call.labels,
+            alphas,
+            call.seed,
+            model.step,
+            call.batch_size,
+            call.config,
+            settings,
+            silhouettes,
+        )
+        model.step += 1
+        _update_ema(model.ema, model.unet, min(settings.ema_decay, (1 + model.step) / (10 + model.step)))
+        if progress is not None:
+            progress(FitProgress("denoiser", model.step, steps, model.loss, time.monotonic() - started))
+        if model.step % settings.checkpoint_every == 0:
+            _checkpoint(checkpoint, model, model.seconds_before + time.monotonic() - started)
+    seconds = time.monotonic() - started
+    _checkpoint(checkpoint, model, model.seconds_before + seconds)
+    return seconds
+
+
+def _checkpoint(path: Path, model: _Denoiser, seconds: float) -> None:
+    save_checkpoint(path, model.identity, model.unet, model.ema, model.optimizer, model.step, model.loss, seconds)
+
+
+def _metadata(
+    call: _FitCall,
+    model: _Denoiser,
+    previous: Path,
+    dataset: Dataset,
+    *,
+    budget: dict,
+    command: Sequence[str] | None,
+    seconds: float,
+) -> dict:
+    """The folder's metadata: what made it; ``previous`` (the metadata so far) gives a resumed run's history.
+
+    ``budget`` holds the call's ``steps`` and ``minutes``; ``seconds`` is what this call trained.
+    """
+    history = earlier_history(previous, call.data_hash) if model.resumed_from else []
+    entry = {"command": list(command) if command is not None else None, "steps": [model.resumed_from, model.step]}
+    if model.start is not None and not model.resumed_from:
+        entry["init"] = model.start
     history.append(entry)
-    if not resumed_from:
-        init_record = start
-    else:
-        init_record = _previous_init(out / METADATA)
-    (out / METADATA).unlink(missing_ok=True)
-    _replace_dir(out / "unet", lambda tmp: ema.save_pretrained(tmp, safe_serialization=True))
-    _replace_dir(out / "scheduler", lambda tmp: scheduler.save_pretrained(tmp))
-    metadata = {
+    return {
         "format": FORMAT,
         "format_version": FORMAT_VERSION,
-        "classes": list(examples.classes),
-        "labels": list(labels),
-        "window": config.window,
-        "denoiser": config.to_dict(),
-        "training": {**settings.__dict__, "batch_size": batch_size, "steps": steps, "minutes": minutes},
-        "data_hash": data_hash,
+        "classes": list(call.examples.classes),
+        "labels": list(call.labels),
+        "window": call.config.window,
+        "denoiser": call.config.to_dict(),
+        "training": {**call.settings.__dict__, "batch_size": call.batch_size, **budget},
+        "data_hash": call.data_hash,
         "data_source": str(dataset.source) if dataset.source else None,
         "command": list(command) if command is not None else None,
         "history": history,
-        "init": init_record,
-        "seed": seed,
-        "steps_done": step,
-        "final_loss": loss_value,
-        "denoiser_train_seconds": round(seconds_before + seconds, 1),
+        "init": model.start if not model.resumed_from else earlier_init(previous),
+        "seed": call.seed,
+        "steps_done": model.step,
+        "final_loss": model.loss,
+        "denoiser_train_seconds": round(model.seconds_before + seconds, 1),
         "versions": {
             "rarefill": __version__,
             "torch": torch.__version__,
@@ -263,8 +352,6 @@ def fit(
             "python": platform.python_version(),
         },
     }
-    write_json_atomic(out / METADATA, metadata, indent=2)
-    return FitResult(out, step, seconds, loss_value, resumed_from)
 
 
 def _done(step: int, steps: int | None, minutes: float | None, started: float) -> bool:
@@ -323,53 +410,6 @@ def _update_ema(ema: torch.nn.Module, model: torch.nn.Module, decay: float) -> N
         target.lerp_(source.detach(), 1.0 - decay)
 
 
-def _save_checkpoint(path: Path, identity: dict, unet, ema, optimizer, step: int, loss: float, seconds: float) -> None:
-    buffer = io.BytesIO()
-    state = {
-        **identity,
-        "unet": unet.state_dict(),
-        "ema": ema.state_dict(),
-        "optimizer": optimizer.state_dict(),
-        "step": step,
-        "loss": loss,
-        "seconds": seconds,
-    }
-    torch.save(state, buffer)
-    write_bytes_atomic(path, buffer.getvalue())
-
-
-def _resume(path: Path, identity: dict, unet, ema, optimizer) -> tuple[int, float, float]:
-    if not path.exists():
-        return 0, math.nan, 0.0
-    try:
-        state = torch.load(path, map_location="cpu", weights_only=True)
-    except Exception as exc:  # a checkpoint torch cannot read is the user's to remove, not ours
-        raise ModelError(f"{path}: checkpoint cannot be read ({exc})", hint="delete it to start afresh") from None
-    for key, value in identity.items():
-        if state.get(key) != value:
-            raise ModelError(
-                f"{path}: checkpoint was made with another {key} ({state.get(key)!r:.80} != {value!r:.80})",
-                hint="train into a new --out folder, or delete the checkpoint to start afresh",
-            )
-    unet.load_state_dict(state["unet"])
-    ema.load_state_dict(state["ema"])
-    optimizer.load_state_dict(state["optimizer"])
-    return int(state["step"]), float(state["loss"]), float(state["seconds"])
-
-
-def _history(metadata: Path, data_hash: str) -> list[dict]:
-    # Each call of a resumed training adds one entry, so the metadata names every command that shaped it.
-    try:
-        previous = json.loads(metadata.read_text(encoding="utf-8"))
-    except (OSError, ValueError):
-        return []
-    if previous.get("data_hash") != data_hash:
-        return []
-    if "history" in previous:
-        return list(previous["history"])
-    return [{"command": previous.get("command"), "steps": [0, previous.get("steps_done")]}]
-
-
 def _warm_start(unet, folder: Path, labels: Sequence[str], config: DenoiserConfig) -> dict:
     """Copy a trained folder's weights into ``unet``; return what to record about that folder."""
     from .sample import load_trained  # sample.py imports nothing of training; keep it that way round
@@ -396,33 +436,3 @@ def _warm_start(unet, folder: Path, labels: Sequence[str], config: DenoiserConfi
         "command": meta.get("command"),
         "history": meta.get("history"),
     }
-
-
-def _previous_init(metadata: Path):
-    try:
-        return json.loads(metadata.read_text(encoding="utf-8")).get("init")
-    except (OSError, ValueError):
-        return None
-
-
-def _verifier_matches(out: Path, data_hash: str) -> bool:
-    path = out / VERIFIER_JSON
-    if not path.exists():
-        return False
-    try:
-        return json.loads(path.read_text(encoding="utf-8")).get("data_hash") == data_hash
-    except (OSError, ValueError):
-        return False
-
-
-def _replace_dir(target: Path, write: Callable[[Path], None]) -> None:
-    # Write the whole folder beside the target, then swap it in, so a crash never leaves half a folder.
-    tmp = target.with_name(f".{target.name}.tmp")
-    shutil.rmtree(tmp, ignore_errors=True)
-    write(tmp)
-    old = target.with_name(f".{target.name}.old")
-    shutil.rmtree(old, ignore_errors=True)
-    if target.exists():
-        target.rename(old)
-    tmp.rename(target)
-    shutil.rmtree(old, ignore_errors=True)

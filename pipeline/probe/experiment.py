@@ -27,7 +27,7 @@ from typing import Any
 
 import numpy as np
 
-from ..dataset import load_dataset
+from ..dataset import Dataset, load_dataset
 from ..errors import DatasetError, UsageError
 from ..merge import merge
 from .evaluation import Evaluation
@@ -148,6 +148,34 @@ def run_probe(
     # 1. check options
     say = progress or (lambda _message: None)
     shares = _check_shares(shares)
+    threads = _check_budget(epochs=epochs, minutes=minutes, seeds=seeds, workers=workers, threads=threads)
+    arms = check_arms(arms, baseline)
+    _check_test_split(real_json, test_json, guards)
+    settings = settings or TrainSettings(steps=1)
+    out = Path(out)
+
+    # 2. load the real and test splits; one class list for both
+    real, class_names, counts, rare = _load_splits(real_json, test_json, rare_below)
+
+    # 3. make the training sets (seed-major, so the first results already pair up)
+    jobs = _training_sets(real, real_json, test_json, guards, arms, shares, seeds, out, class_names, settings)
+    say(f"made {len(jobs)} training sets in {out / 'sets'}")
+
+    # 4. fix the number of steps: equal for every model
+    steps = _steps_per_model(
+        real, settings, jobs[0], epochs=epochs, minutes=minutes, workers=workers, threads=threads, say=say
+    )
+    settings = replace(settings, steps=steps)
+    jobs = [replace(job, settings=settings) for job in jobs]
+
+    # 5. train and score (models already trained with the same inputs are read back)
+    runs = _train_and_score(jobs, rare, workers=workers, threads=threads, say=say)
+    inputs = _inputs(real_json, test_json, guards, arms, baseline, out, counts, rare_below)
+    return ProbeResult(runs, class_names, rare, settings, shares, tuple(range(seeds)), inputs)
+
+
+def _check_budget(*, epochs: float | None, minutes: float | None, seeds: int, workers: int, threads: int | None) -> int:
+    """Check the training budget, the seeds and the workers; the torch threads per model (default filled in)."""
     if (epochs is None) == (minutes is None):
         raise UsageError("give exactly one of --epochs and --minutes")
     if epochs is not None and not epochs > 0:
@@ -162,7 +190,13 @@ def run_probe(
         threads = max(1, (os.cpu_count() or 1) // workers)
     if not isinstance(threads, int) or threads < 1:
         raise UsageError(f"--threads must be an integer >= 1, got {threads!r}")
-    arms = check_arms(arms, baseline)
+    return threads
+
+
+def _check_test_split(
+    real_json: str | os.PathLike[str], test_json: str | os.PathLike[str], guards: Sequence[str | os.PathLike[str]]
+) -> None:
+    """The test split must be held out: neither the training split nor one of the guards (it is always guarded)."""
     test_path = Path(test_json).resolve()
     if test_path == Path(real_json).resolve():
         raise UsageError(f"--test {test_json} is also the training split (--real); score on a held-out split")
@@ -171,10 +205,13 @@ def run_probe(
             f"--test {test_json} is also given as --guard",
             hint="the test split is always guarded; drop it from --guard",
         )
-    settings = settings or TrainSettings(steps=1)
-    out = Path(out)
 
-    # 2. load the real and test splits; one class list for both
+
+def _load_splits(
+    real_json: str | os.PathLike[str], test_json: str | os.PathLike[str], rare_below: int
+) -> tuple[Dataset, tuple[str, ...], dict[str, int], tuple[str, ...]]:
+    """The real split, its class names (the test split must have the same), its non-crowd instances per class,
+    and the rare classes: those with fewer than ``rare_below``."""
     real = load_dataset(real_json)
     test = load_dataset(test_json)
     class_names = tuple(c.name for c in real.categories)
@@ -187,8 +224,22 @@ def run_probe(
         if not ann.iscrowd:
             counts[names[ann.category_id]] += 1
     rare = tuple(name for name in class_names if counts[name] < rare_below)
+    return real, class_names, counts, rare
 
-    # 3. make the training sets (seed-major, so the first results already pair up)
+
+def _training_sets(
+    real: Dataset,
+    real_json: str | os.PathLike[str],
+    test_json: str | os.PathLike[str],
+    guards: Sequence[str | os.PathLike[str]],
+    arms: Mapping[str, Sequence[Path]],
+    shares: Sequence[float],
+    seeds: int,
+    out: Path,
+    class_names: tuple[str, ...],
+    settings: TrainSettings,
+) -> list[Job]:
+    """One job per seed and condition, seed-major: ``real`` alone, then every arm merged at every share > 0."""
     conditions = [("real", 0.0)] + [(arm, s) for arm in arms for s in shares if s > 0]
     held_out = [Path(test_json), *map(Path, guards)]
     jobs: list[Job] = []
@@ -213,21 +264,35 @@ def run_probe(
                 Job(arm, share, seed, str(set_file), str(images_dir), str(test_json), class_names, settings,
                     n_syn, reached, str(record))
             )  # fmt: skip
-    say(f"made {len(jobs)} training sets in {out / 'sets'}")
+    return jobs
 
-    # 4. fix the number of steps: equal for every model
+
+def _steps_per_model(
+    real: Dataset,
+    settings: TrainSettings,
+    job: Job,
+    *,
+    epochs: float | None,
+    minutes: float | None,
+    workers: int,
+    threads: int,
+    say: Callable[[str], None],
+) -> int:
+    """``epochs`` passes over the real split, or as many steps as ``job`` trains in ``minutes`` (timed)."""
     if epochs is not None:
-        steps = math.ceil(epochs * len(real.scenes) / settings.batch_size)
-    else:
-        # time as many models side by side as will train side by side
-        timings = [t for _, t in in_parallel(seconds_per_step, [jobs[0]] * workers, workers, threads)]
-        seconds = float(np.mean(timings))
-        steps = max(1, math.floor(minutes * 60 / seconds))
-        say(f"timed {seconds:.2f} s per step: {steps} steps per model for {minutes:g} min")
-    settings = replace(settings, steps=steps)
-    jobs = [replace(job, settings=settings) for job in jobs]
+        return math.ceil(epochs * len(real.scenes) / settings.batch_size)
+    # time as many models side by side as will train side by side
+    timings = [t for _, t in in_parallel(seconds_per_step, [job] * workers, workers, threads)]
+    seconds = float(np.mean(timings))
+    steps = max(1, math.floor(minutes * 60 / seconds))
+    say(f"timed {seconds:.2f} s per step: {steps} steps per model for {minutes:g} min")
+    return steps
 
-    # 5. train and score (models already trained with the same inputs are read back)
+
+def _train_and_score(
+    jobs: Sequence[Job], rare: Sequence[str], *, workers: int, threads: int, say: Callable[[str], None]
+) -> tuple[ProbeRun, ...]:
+    """Every job's run: read back when trained before with the same inputs, else trained and scored now."""
     runs: list[ProbeRun | None] = [reuse(Path(job.record), run_key(job)) for job in jobs]
     if any(runs):
         say(f"reusing {sum(r is not None for r in runs)} model(s) trained before with the same inputs")
@@ -239,7 +304,21 @@ def run_probe(
             f"AP50 {run.evaluation.ap50:.3f}, rare AP50 {_fmt(rare_ap50(run.evaluation, rare))}, "
             f"{run.train_seconds:.0f} s"
         )
-    inputs = {
+    return tuple(r for r in runs if r is not None)
+
+
+def _inputs(
+    real_json: str | os.PathLike[str],
+    test_json: str | os.PathLike[str],
+    guards: Sequence[str | os.PathLike[str]],
+    arms: Mapping[str, Sequence[Path]],
+    baseline: str | None,
+    out: Path,
+    counts: Mapping[str, int],
+    rare_below: int,
+) -> dict[str, Any]:
+    """What a probe was given, as JSON-ready values (:attr:`ProbeResult.inputs`)."""
+    return {
         "real": str(real_json),
         "test": str(test_json),
         "guards": [str(g) for g in guards],
@@ -249,9 +328,6 @@ def run_probe(
         "real_instances": counts,
         "rare_below": rare_below,
     }
-    return ProbeResult(
-        tuple(r for r in runs if r is not None), class_names, rare, settings, shares, tuple(range(seeds)), inputs
-    )
 
 
 def check_arms(

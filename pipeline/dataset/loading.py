@@ -1,17 +1,7 @@
-"""Load, validate and save COCO detection data sets.
+"""Read and validate a COCO detection file into a :class:`~pipeline.dataset.Dataset`.
 
-Conventions, stated once for the whole package:
-
-* A COCO box is ``[x, y, w, h]`` in pixels: ``(x, y)`` is the top-left corner, ``x`` counts columns
-  from the left edge and ``y`` rows from the top edge (cocodataset.org, "Data format").
-* Arrays are indexed ``(row, col)``; images are ``(H, W, 3) uint8`` RGB.
-* Keys that COCO does not define (provenance lives there) are kept in ``extra`` and written back
-  unchanged, so a load/save round trip loses nothing.
-
-Pixel rule: every image loads as 8-bit RGB. EXIF orientation is applied first (the JSON's width and
-height must describe the upright image). Palette (P), greyscale (L) and CMYK images are converted by
-Pillow's colour conversion; alpha channels (LA, RGBA, PA) are dropped, not composited; 16- and 32-bit
-greyscale (I;16, I) are scaled to 8 bits by keeping the high byte of the 16-bit range.
+Every refusal is a :class:`~pipeline.errors.DatasetError` naming the file, the JSON path
+(``annotations[12].bbox``) and the reason.
 """
 
 from __future__ import annotations
@@ -20,16 +10,14 @@ import json
 import math
 import os
 import warnings
-from collections.abc import Iterable, Mapping, Sequence
-from dataclasses import dataclass, field, replace
+from collections.abc import Sequence
+from dataclasses import replace
 from pathlib import Path
 from typing import Any
 
-import numpy as np
-from PIL import Image, ImageOps, UnidentifiedImageError
-
-from .errors import DatasetError, DatasetWarning
-from .files import write_json_atomic
+from ..errors import DatasetError, DatasetWarning
+from .pixels import upright_size
+from .records import Annotation, Category, Dataset, Scene
 
 BOX_TOLERANCE_PX = 1.0
 """A box may stick out of its image by this much before it is an error (rounding in other tools)."""
@@ -37,152 +25,6 @@ BOX_TOLERANCE_PX = 1.0
 _IMAGE_KEYS = ("id", "file_name", "width", "height")
 _ANNOTATION_KEYS = ("id", "image_id", "category_id", "bbox", "area", "iscrowd", "segmentation")
 _CATEGORY_KEYS = ("id", "name", "supercategory")
-_EXIF_ORIENTATION = 0x0112
-_SWAPPING_ORIENTATIONS = {5, 6, 7, 8}
-
-
-@dataclass(frozen=True)
-class Category:
-    """One COCO category."""
-
-    id: int
-    name: str
-    supercategory: str | None = None
-    extra: Mapping[str, Any] = field(default_factory=dict)
-
-
-@dataclass(frozen=True)
-class Annotation:
-    """One COCO object annotation; ``bbox`` is ``(x, y, w, h)`` in pixels from the top-left corner."""
-
-    id: int
-    image_id: int
-    category_id: int
-    bbox: tuple[float, float, float, float]
-    area: float
-    iscrowd: int = 0
-    segmentation: Any = None
-    extra: Mapping[str, Any] = field(default_factory=dict)
-
-    @property
-    def bottom_row(self) -> float:
-        """Image row of the box's lower edge (where the object meets the ground)."""
-        return self.bbox[1] + self.bbox[3]
-
-
-@dataclass(frozen=True)
-class Scene:
-    """One image entry with its annotations. Pixels are read only when :meth:`load_rgb` is called."""
-
-    id: int
-    file_name: str
-    width: int
-    height: int
-    path: Path
-    annotations: tuple[Annotation, ...] = ()
-    extra: Mapping[str, Any] = field(default_factory=dict)
-
-    def load_rgb(self) -> np.ndarray:
-        """Read the image as an ``(H, W, 3) uint8`` RGB array (see the module's pixel rule)."""
-        return read_rgb(self.path)
-
-
-@dataclass(frozen=True)
-class Dataset:
-    """A validated COCO detection data set: scenes (images with their annotations) and categories."""
-
-    scenes: tuple[Scene, ...]
-    categories: tuple[Category, ...]
-    images_dir: Path
-    source: Path | None = None
-    extra: Mapping[str, Any] = field(default_factory=dict)
-
-    def category_by_name(self, name: str) -> Category:
-        """The category called ``name``; a :class:`DatasetError` lists the known names otherwise."""
-        for category in self.categories:
-            if category.name == name:
-                return category
-        known = ", ".join(c.name for c in self.categories)
-        raise DatasetError(self.source or "<dataset>", "categories", f"no category named {name!r} (known: {known})")
-
-    def category_names(self) -> dict[int, str]:
-        """Map category id to name."""
-        return {c.id: c.name for c in self.categories}
-
-    def annotations(self) -> Iterable[Annotation]:
-        """Every annotation of every scene, in file order of the scenes."""
-        for scene in self.scenes:
-            yield from scene.annotations
-
-
-# --------------------------------------------------------------------------------------------------
-# pixels
-
-
-def read_rgb(path: str | os.PathLike[str]) -> np.ndarray:
-    """Read an image file as ``(H, W, 3) uint8`` RGB following the module's pixel rule.
-
-    Raises
-    ------
-    DatasetError
-        The file is missing, empty or not an image Pillow can decode.
-    """
-    path = Path(path)
-    try:
-        with Image.open(path) as img:
-            img.load()
-            img = ImageOps.exif_transpose(img)
-            return _to_rgb_array(img)
-    except FileNotFoundError:
-        raise DatasetError(path, "", "image file not found") from None
-    except (UnidentifiedImageError, OSError, SyntaxError, ValueError) as exc:
-        raise DatasetError(path, "", f"image cannot be read ({exc})") from None
-
-
-def _to_rgb_array(img: Image.Image) -> np.ndarray:
-    if img.mode in ("I;16", "I;16B", "I;16L", "I;16N", "I"):
-        grey = np.asarray(img).astype(np.int64)
-        grey = (np.clip(grey, 0, 65535) >> 8).astype(np.uint8)
-        return np.repeat(grey[:, :, None], 3, axis=2)
-    if img.mode != "RGB":
-        img = img.convert("RGB")
-    return np.asarray(img, dtype=np.uint8).copy()
-
-
-def _upright_size(path: Path, file: Path, where: str) -> tuple[int, int]:
-    """Width and height of the image after EXIF rotation, reading only the header."""
-    try:
-        if path.stat().st_size == 0:
-            raise DatasetError(file, where, f"image file {path} is empty")
-        with Image.open(path) as img:
-            width, height = img.size
-            orientation = _header_orientation(img)
-    except FileNotFoundError:
-        raise DatasetError(file, where, f"image file {path} not found") from None
-    except DatasetError:
-        raise
-    except (UnidentifiedImageError, OSError, SyntaxError, ValueError) as exc:
-        raise DatasetError(file, where, f"image file {path} cannot be read ({exc})") from None
-    if orientation in _SWAPPING_ORIENTATIONS:
-        width, height = height, width
-    return width, height
-
-
-def _header_orientation(img: Image.Image) -> int:
-    # Pillow's PNG getexif() decodes the whole image to find a trailing eXIf chunk; only the header's
-    # chunks are looked at here, so that validation never reads pixels.
-    if img.format == "PNG":
-        raw = img.info.get("exif")
-        if not raw:
-            return 1
-        exif = Image.Exif()
-        exif.load(raw)
-        return exif.get(_EXIF_ORIENTATION, 1)
-    return img.getexif().get(_EXIF_ORIENTATION, 1)
-
-
-# --------------------------------------------------------------------------------------------------
-# loading
 
 
 def default_images_dir(json_path: str | os.PathLike[str]) -> Path:
@@ -305,7 +147,7 @@ def _parse_images(items: list, file: Path, images_dir: Path, check_images: bool)
             raise DatasetError(file, f"{where}.id", f"duplicate image id {iid}")
         path = _resolve_inside(file_name, root, file, f"{where}.file_name")
         if check_images:
-            size = _upright_size(path, file, f"{where}.file_name")
+            size = upright_size(path, file, f"{where}.file_name")
             if size != (width, height):
                 raise DatasetError(
                     file,
@@ -406,61 +248,6 @@ def clip_box(bbox: Sequence[float], width: int, height: int) -> tuple[float, flo
 
 
 # --------------------------------------------------------------------------------------------------
-# saving
-
-
-def to_coco(dataset: Dataset, *, file_names: Mapping[int, str] | None = None) -> dict[str, Any]:
-    """The COCO JSON object of ``dataset``, extra keys included. ``file_names`` overrides per image id."""
-    out: dict[str, Any] = dict(dataset.extra)
-    out["images"] = [image_entry(s, file_name=(file_names or {}).get(s.id, s.file_name)) for s in dataset.scenes]
-    out["annotations"] = [annotation_entry(a) for a in dataset.annotations()]
-    out["categories"] = [category_entry(c) for c in dataset.categories]
-    return out
-
-
-def image_entry(scene: Scene, *, file_name: str | None = None) -> dict[str, Any]:
-    """COCO ``images`` entry of a scene."""
-    entry: dict[str, Any] = {
-        "id": scene.id,
-        "file_name": file_name if file_name is not None else scene.file_name,
-        "width": scene.width,
-        "height": scene.height,
-    }
-    entry.update(scene.extra)
-    return entry
-
-
-def annotation_entry(ann: Annotation) -> dict[str, Any]:
-    """COCO ``annotations`` entry."""
-    entry: dict[str, Any] = {
-        "id": ann.id,
-        "image_id": ann.image_id,
-        "category_id": ann.category_id,
-        "bbox": [_plain_number(v) for v in ann.bbox],
-        "area": _plain_number(ann.area),
-        "iscrowd": ann.iscrowd,
-    }
-    if ann.segmentation is not None:
-        entry["segmentation"] = ann.segmentation
-    entry.update(ann.extra)
-    return entry
-
-
-def category_entry(category: Category) -> dict[str, Any]:
-    """COCO ``categories`` entry."""
-    entry: dict[str, Any] = {"id": category.id, "name": category.name}
-    if category.supercategory is not None:
-        entry["supercategory"] = category.supercategory
-    entry.update(category.extra)
-    return entry
-
-
-def save_dataset(dataset: Dataset, json_path: str | os.PathLike[str], *, indent: int | None = None) -> None:
-    """Write ``dataset`` as COCO JSON atomically (temp file, fsync, rename)."""
-    write_json_atomic(json_path, to_coco(dataset), indent=indent)
-
-
-# --------------------------------------------------------------------------------------------------
 # small validators
 
 
@@ -498,10 +285,6 @@ def _extra(entry: dict, known: Sequence[str]) -> dict[str, Any]:
 
 def _is_number(value: Any) -> bool:
     return isinstance(value, (int, float)) and not isinstance(value, bool)
-
-
-def _plain_number(value: float) -> int | float:
-    return int(value) if float(value).is_integer() else float(value)
 
 
 def _type_name(value: Any) -> str:
