@@ -16,6 +16,7 @@ from urllib.parse import unquote
 import cv2
 import numpy as np
 import pytest
+from pycocotools import mask as mask_utils
 from typer.testing import CliRunner
 
 from pipeline.audit import audit_run, read_audit
@@ -201,6 +202,17 @@ def test_silhouette_fit_of_a_half_filled_box():
     assert fill == pytest.approx(1.0, abs=0.05) and beyond == pytest.approx(0.0, abs=0.02)
     with pytest.raises(ValueError, match="empty"):
         silhouette_fit({"size": [48, 64], "counts": [64 * 48]}, (0, 0, 5, 5), (64, 48))
+
+
+def test_silhouette_fit_reads_compressed_rle_as_pycocotools_writes_it():
+    # The generator writes its silhouettes as compressed RLE (counts a string), pycocotools' own encoding;
+    # the fit must read them as it reads polygons (pycocotools, the COCO API's reference reader).
+    square = np.zeros((48, 64), dtype=np.uint8)
+    square[10:20, 10:20] = 1
+    rle = mask_utils.encode(np.asfortranarray(square))
+    rle["counts"] = rle["counts"].decode("ascii")
+    fill, beyond = silhouette_fit(rle, (10.0, 10.0, 20.0, 10.0), (64, 48))
+    assert fill == pytest.approx(0.5) and beyond == pytest.approx(0.5)
 
 
 # --------------------------------------------------------------------------------------------------

@@ -13,7 +13,8 @@ from typing import Any
 
 import cv2
 import numpy as np
-from pycocotools import mask as mask_utils
+
+from ..silhouette import segmentation_mask
 
 BAND_EDGES = (12.0, 24.0, 36.0, 48.0, 64.0, math.inf)
 """Box-height bands in pixels: [12, 24), [24, 36), ..., [64, inf)."""
@@ -120,9 +121,7 @@ def silhouette_fit(segmentation: Any, box: Sequence[float], image_size: tuple[in
     """
     width, height = image_size
     try:
-        rles = mask_utils.frPyObjects(segmentation, height, width)
-        rle = mask_utils.merge(rles) if isinstance(rles, list) else rles
-        silhouette = mask_utils.decode(rle).astype(bool)
+        silhouette = segmentation_mask(segmentation, height, width)
     except (TypeError, ValueError, KeyError, IndexError) as exc:
         raise ValueError(f"segmentation cannot be decoded ({exc})") from None
     rows, cols = np.nonzero(silhouette)
