@@ -15,7 +15,7 @@ from pipeline.dataset import Annotation, load_dataset
 from pipeline.exemplars import Exemplar, ExemplarBank, build_bank, height_targets, ks_distance
 from pipeline.geometry import fit_ground
 from pipeline.silhouette import object_silhouette, repaint_mask
-from pipeline.stages.insert_exemplar import MIN_VISIBLE_SHARE, hide_behind
+from pipeline.stages.insert_exemplar import MIN_VISIBLE_SHARE, exemplar_slot, hide_behind
 
 from .conftest import SEED_SCENES
 from .fakes import AlwaysVerifier, BlockGenerator, ShadeGenerator
@@ -160,6 +160,19 @@ def test_bank_picks_only_exemplars_within_the_upscale_limit():
     bank = ExemplarBank("tractor", (small, big), 2, {}, 1.5)
     assert bank.usable_for(30) == [0, 1] and bank.usable_for(31) == [1] and bank.pick(76, 0) is None
     assert {id(bank.pick(25, slot)) for slot in range(4)} == {id(small), id(big)}  # round-robin
+
+
+@pytest.mark.parametrize("per_image", [1, 2, 3])
+@pytest.mark.parametrize("usable", [2, 4, 5, 8])
+def test_objects_cycle_evenly_through_the_usable_exemplars(per_image, usable):
+    exemplars = tuple(_exemplar(np.zeros((40, 20, 3), np.uint8), np.ones((40, 20))) for _ in range(usable))
+    bank = ExemplarBank("tractor", exemplars, usable, {}, 1.5)
+    jobs = 8 * usable
+    counts = {id(e): 0 for e in exemplars}
+    for job in range(jobs):
+        for index in range(per_image):
+            counts[id(bank.pick(30.0, exemplar_slot(job, index, per_image)))] += 1
+    assert set(counts.values()) == {jobs * per_image // usable}
 
 
 def test_bank_leaves_out_truncated_and_hidden_instances(train):

@@ -54,9 +54,6 @@ HEIGHT_DRAWS = 100
 """Target heights drawn until one an exemplar can reach within the upscale limit: the target distribution
 is the real one cut where the bank's tallest instance ends (a taller one would fail every attempt)."""
 
-SLOTS_PER_JOB = 8
-"""Round-robin stride per job: more than the most objects one image gets (``objects_per_image`` <= 8)."""
-
 
 def bank_for(spec: StageSpec, ctx: StageContext) -> ExemplarBank:
     """The stage's exemplar bank (built by the runner)."""
@@ -78,6 +75,16 @@ def target_height(spec: StageSpec, bank: ExemplarBank, job: Job, index: int) -> 
         if bank.usable_for(height):
             break
     return height
+
+
+def exemplar_slot(job_slot: int, index: int, per_image: int) -> int:
+    """The round-robin position of object ``index`` of job ``job_slot`` when images get up to ``per_image``.
+
+    Positions are consecutive over the stage's objects (``job_slot * per_image + index``), so the objects
+    cycle through the usable exemplars evenly whatever their number; a stride that shares a factor with it
+    (8 per job, say, with 4 or 8 usable exemplars) would give every one-object job the same exemplar.
+    """
+    return job_slot * per_image + index
 
 
 def draft(job: Job, attempt: int, spec: StageSpec, ctx: StageContext, wanted: int, low: int) -> Draft | Failure:
@@ -119,7 +126,7 @@ def draft(job: Job, attempt: int, spec: StageSpec, ctx: StageContext, wanted: in
 
 def _one_object(job, spec, ctx, bank, index, scene, image, surface, boxes, taken, rng, cache) -> dict | Failure:
     height = target_height(spec, bank, job, index)
-    exemplar = bank.pick(height, job.slot * SLOTS_PER_JOB + index)
+    exemplar = bank.pick(height, exemplar_slot(job.slot, index, spec.options["objects_per_image"][1]))
     if exemplar is None:
         tallest = max(e.height for e in bank.exemplars)
         reason = f"no exemplar reaches {height:.0f} px within {bank.max_upscale:g}x (tallest {tallest} px)"
