@@ -24,7 +24,7 @@ from pipeline.audit.core import torch_threads
 from pipeline.audit.features import coverage, embed, knn_radii, near_copies, precision_recall, train_feature_net
 from pipeline.audit.instances import by_class, check_heldout, crop_instances, real_instances, synthetic_instances
 from pipeline.audit.sharpness import compare_sharpness, edge_strength, silhouette_fit
-from pipeline.audit.two_sample import binomial_tail, two_sample_test, wilson_interval
+from pipeline.audit.two_sample import binomial_tail, group_folds, two_sample_test, wilson_interval
 from pipeline.cli import app
 from pipeline.dataset import load_dataset, parse_dataset
 from pipeline.errors import DatasetError, RunError, UsageError
@@ -143,6 +143,34 @@ def test_two_sample_test_is_deterministic_and_checks_input(test_crops):
         two_sample_test(crops.astype(np.float32), crops, rng=0)
 
 
+def test_held_out_exemplars_separate_repetition_from_appearance(test_crops):
+    # Twelve real cars, each repeated five times, against sixty other real cars: every crop is real, so
+    # only the repetition differs. The plain test learns the twelve and tells them apart; with each car's
+    # copies held out together (grouped cross-validation, common practice) the network meets only cars it
+    # has never seen, and its accuracy falls to about chance.
+    cars = test_crops["car"].test
+    order = np.random.default_rng(5).permutation(len(cars))
+    assert len(cars) >= 72
+    repeated = np.repeat(cars[order[60:72]], 5, axis=0)
+    groups = np.repeat(np.arange(12), 5).tolist()
+    plain = two_sample_test(cars[order[:60]], repeated, rng=0, **FAST)
+    grouped = two_sample_test(cars[order[:60]], repeated, rng=0, groups_b=groups, **FAST)
+    assert plain.low > 0.5 and plain.accuracy > 0.8
+    assert grouped.low <= 0.5 <= grouped.high and grouped.accuracy < plain.accuracy - 0.2
+    with pytest.raises(ValueError, match="at least 4 groups"):
+        two_sample_test(cars[:60], repeated, rng=0, groups_b=[g % 3 for g in groups], **FAST)
+    with pytest.raises(ValueError, match="one key per crop"):
+        two_sample_test(cars[:60], repeated, rng=0, groups_b=groups[:-1], **FAST)
+
+
+def test_group_folds_keep_groups_whole_and_balance_the_folds():
+    keys = ["a"] * 6 + ["b"] * 5 + ["c"] * 3 + ["d"] * 3 + ["e"] * 2 + ["f"]
+    folds = group_folds(keys, len(keys), np.arange(len(keys)), 3, np.random.default_rng(0))
+    for key in set(keys):
+        assert len({int(f) for f, k in zip(folds, keys, strict=True) if k == key}) == 1
+    assert sorted(np.bincount(folds, minlength=3).tolist()) == [6, 7, 7]
+
+
 # --------------------------------------------------------------------------------------------------
 # controls of coverage and near-copies
 
@@ -249,6 +277,8 @@ def _fake_run(folder: Path, *, split: str = "train", blur: float = 0.0) -> Path:
     for a in source["annotations"]:
         if a["image_id"] in keep:
             mark = {"synthetic": a["category_id"] == tractor}
+            if mark["synthetic"]:  # each "inserted" tractor names itself as its exemplar
+                mark["exemplar"] = {"image_id": a["image_id"], "annotation_id": a["id"]}
             annotations.append(
                 {k: a[k] for k in ("id", "image_id", "category_id", "bbox", "area")} | {"rarefill": mark}
             )
@@ -263,6 +293,7 @@ def test_synthetic_instances_follow_provenance(tmp_path):
     labels = load_dataset(run / "labels.json")
     found = synthetic_instances(labels)
     assert {i.label for i in found} == {"tractor"} and len(found) == 20
+    assert all(i.exemplar == (i.image_id, i.annotation_id) for i in found)
     raw = json.loads((run / "labels.json").read_text())
     raw["images"][0]["rarefill"]["stage"]["kind"] = "restyle"  # a restyled scene: all its objects count
     whole = parse_dataset(raw, run / "images")
@@ -291,6 +322,8 @@ def test_audit_of_copied_training_tractors(tmp_path):
     assert result["train"].endswith("train.json")  # found beside test.json by the source images
     assert (tractor["n_synthetic"], tractor["n_real"], tractor["n_train"]) == (20, 45, 20)
     assert tractor["two_sample"]["low"] <= 0.5 <= tractor["two_sample"]["high"]  # real against real
+    unseen = tractor["unseen_exemplars"]  # 20 exemplars of one instance each: held out one by one
+    assert unseen["trials"] == 40 and unseen["low"] <= 0.5 <= unseen["high"]
     assert tractor["near_copies"]["share"] == 1.0  # they are the training crops
     assert tractor["box_fit"]["synthetic"] is None  # no silhouettes recorded
     assert 0.7 < tractor["sharpness"]["ratio"] < 1.4

@@ -131,7 +131,26 @@ def _class_figures(
         out["notes"].append("near-copies need training, held-out and synthetic instances of the class")
     out["sharpness"] = compare_sharpness(syn.sharpness, syn.heights, real.sharpness, real.heights)
     out["box_fit"] = {"synthetic": box_fit(syn.instances), "real": box_fit(real.instances)}
+    out["unseen_exemplars"] = _unseen_exemplars(syn, real, folds=folds, epochs=epochs, rng=rng, notes=out["notes"])
     return out, scores, copies
+
+
+def _unseen_exemplars(
+    syn: Crops, real: Crops, *, folds: int, epochs: int, rng: np.random.Generator, notes: list[str]
+) -> dict[str, Any] | None:
+    """The two-sample test with each exemplar's instances held out together (``None`` with a note when
+    the synthetic instances do not all name an exemplar, or name fewer than ``folds``)."""
+    sources = [item.exemplar for item in syn.instances]
+    if not sources or any(s is None for s in sources):
+        return None
+    if min(len(syn), len(real)) < folds or len(set(sources)) < folds:
+        notes.append(f"the test on unseen exemplars needs {folds} exemplars, got {len(set(sources))}")
+        return None
+    try:
+        return two_sample_test(real.test, syn.test, folds=folds, epochs=epochs, rng=rng, groups_b=sources).to_dict()
+    except ValueError as exc:
+        notes.append(f"the test on unseen exemplars: {exc}")
+        return None
 
 
 def _groups(
@@ -237,8 +256,8 @@ def audit_run(
     dict
         What ``audit.json`` holds: ``format``, ``run``, ``heldout``, ``train``, ``seed``, ``settings``,
         ``model`` (the run's model identity), ``classes`` (per class: ``n_synthetic``, ``n_real``,
-        ``n_train``, ``skipped_small``, ``two_sample``, ``floor``, ``coverage``, ``near_copies``,
-        ``sharpness``, ``box_fit``, ``examples``, ``notes``).
+        ``n_train``, ``skipped_small``, ``two_sample``, ``floor``, ``unseen_exemplars``, ``coverage``,
+        ``near_copies``, ``sharpness``, ``box_fit``, ``examples``, ``notes``).
 
     Raises
     ------

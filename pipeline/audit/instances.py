@@ -50,7 +50,9 @@ WHOLE_IMAGE_STAGES = frozenset({"rebackground", "restyle"})
 
 @dataclass(frozen=True)
 class Instance:
-    """One object to crop: its image file, COCO box, class name, ids and silhouette (or ``None``)."""
+    """One object to crop: its image file, COCO box, class name, ids and silhouette (or ``None``), and for
+    an inserted object the real instance it was made from (``exemplar``: ``(image_id, annotation_id)`` of
+    the training split, ``None`` otherwise)."""
 
     path: Path
     box: tuple[float, float, float, float]
@@ -60,6 +62,7 @@ class Instance:
     file_name: str
     segmentation: Any = None
     image_size: tuple[int, int] = (0, 0)
+    exemplar: tuple[int, int] | None = None
 
 
 @dataclass(frozen=True)
@@ -149,7 +152,18 @@ def _instance(scene, ann, names: Mapping[int, str]) -> Instance:
         scene.file_name,
         ann.segmentation,
         (scene.width, scene.height),
+        _exemplar_of(ann.extra),
     )
+
+
+def _exemplar_of(extra: Mapping[str, Any]) -> tuple[int, int] | None:
+    """``(image_id, annotation_id)`` of the exemplar an inserted object's provenance names, else ``None``."""
+    record = extra.get(KEY)
+    exemplar = record.get("exemplar") if isinstance(record, Mapping) else None
+    if not isinstance(exemplar, Mapping):
+        return None
+    image_id, ann_id = exemplar.get("image_id"), exemplar.get("annotation_id")
+    return (image_id, ann_id) if isinstance(image_id, int) and isinstance(ann_id, int) else None
 
 
 def by_class(instances: Iterable[Instance]) -> dict[str, list[Instance]]:
