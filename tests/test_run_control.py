@@ -190,8 +190,13 @@ def test_one_job_alone_keeps_every_attempt(tmp_path, short_run, tiny_model):  # 
     manifest = [json.loads(x) for x in (folder / "out" / "manifest.jsonl").read_text().splitlines()]
     full = [m for m in manifest if m["job"] == "s0-000001"]
     assert [a["verdicts"] for a in record["attempts"]] == [m["verdicts"] for m in full]
+    drawn = [a for a in record["attempts"] if a["boxes"]]
+    assert drawn  # at least one attempt got as far as a composite
     for attempt in record["attempts"]:
-        assert attempt["boxes"] and "requested_bbox" in attempt["boxes"][0]
+        if not attempt["boxes"]:  # refused before drawing (no placement, hidden): the reason, no image
+            assert attempt["rejected_by"] and attempt["reason"] and "image" not in attempt
+            continue
+        assert "requested_bbox" in attempt["boxes"][0]
         image = np.asarray(Image.open(scratch / attempt["image"]))
         mask = np.asarray(Image.open(scratch / attempt["mask"]))
         assert image.shape == mask.shape and set(np.unique(mask)) <= {0, 255} and mask.any()
