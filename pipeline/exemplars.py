@@ -289,7 +289,6 @@ is more than this many times the ground strip's own median difference ..."""
 MIN_ROAD_DIFFERENCE = 20.0
 """... and more than this (0-765 scale), so a uniform road does not make every speck an object."""
 
-
 LOWER_PARTS_MARGIN = 0.1
 """Lower parts join only within the silhouette's columns widened by this share of the box width on each
 side (wheels stand a little wider than a cab; a lane marking that runs off to the side stays out)."""
@@ -304,8 +303,8 @@ def with_lower_parts(mask: np.ndarray, image: np.ndarray, box: Sequence[float], 
     bottom edge, the pixels whose colour is unlike the ground (the median of the :data:`ROAD_STRIP_PX`
     rows below the box, with the thresholds :data:`ROAD_SPREAD` and :data:`MIN_ROAD_DIFFERENCE`) and that
     connect to the silhouette (8-connected), within its columns widened by :data:`LOWER_PARTS_MARGIN`,
-    join it; the road between the wheels stays out. Pixels in
-    ``blocked`` ((H, W) bool: the boxes of nearer objects) never join: they may show the occluder.
+    join it; the road between the wheels stays out. Pixels in ``blocked`` ((H, W) bool: the boxes of
+    nearer objects) never join: they may show the occluder.
     """
     height, width = mask.shape
     c0, r0, c1, r1 = box_pixels(box, (height, width))
