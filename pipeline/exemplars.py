@@ -162,12 +162,12 @@ def nearer_boxes(ann: Annotation, scene: Scene) -> np.ndarray:
     return cover
 
 
-def occluded_share(ann: Annotation, scene: Scene) -> float:
-    """Share of ``ann``'s box covered by the union of the boxes of objects standing nearer (lower bottom edge)."""
-    c0, r0, c1, r1 = box_pixels(ann.bbox, (scene.height, scene.width))
+def occluded_share(ann: Annotation, nearer: np.ndarray) -> float:
+    """Share of ``ann``'s box covered by ``nearer`` (:func:`nearer_boxes` of ``ann``)."""
+    c0, r0, c1, r1 = box_pixels(ann.bbox, nearer.shape)
     if c1 <= c0 or r1 <= r0:
         return 1.0
-    return float(nearer_boxes(ann, scene)[r0:r1, c0:c1].mean())
+    return float(nearer[r0:r1, c0:c1].mean())
 
 
 def build_bank(dataset: Dataset, category: str, *, max_upscale: float = 1.5, order_seed: int = 0) -> ExemplarBank:
@@ -204,11 +204,12 @@ def build_bank(dataset: Dataset, category: str, *, max_upscale: float = 1.5, ord
             if not is_usable(ann, scene):
                 left_out["truncated"] += 1
                 continue
-            if occluded_share(ann, scene) > MAX_OCCLUDED_SHARE:
+            nearer = nearer_boxes(ann, scene)
+            if occluded_share(ann, nearer) > MAX_OCCLUDED_SHARE:
                 left_out["occluded"] += 1
                 continue
             image = scene.load_rgb() if image is None else image
-            exemplar, reason = _cut_out(image, ann, scene)
+            exemplar, reason = _cut_out(image, ann, scene, nearer)
             if exemplar is None:
                 left_out[reason] += 1
             else:
@@ -221,8 +222,9 @@ def build_bank(dataset: Dataset, category: str, *, max_upscale: float = 1.5, ord
     )
 
 
-def exemplar_silhouette(image: np.ndarray, ann: Annotation, scene: Scene) -> tuple[np.ndarray, str]:
-    """(H, W) bool silhouette of ``ann`` as an exemplar is cut out, and its source.
+def exemplar_silhouette(image: np.ndarray, ann: Annotation, nearer: np.ndarray) -> tuple[np.ndarray, str]:
+    """(H, W) bool silhouette of ``ann`` as an exemplar is cut out, and its source; ``nearer`` is
+    :func:`nearer_boxes` of ``ann`` (lower parts never join inside it).
 
     The annotation's segmentation where given; else GrabCut's, without thin background parts above
     (:func:`without_thin_parts`), with the lower parts it lost against the road (:func:`with_lower_parts`)
@@ -236,12 +238,12 @@ def exemplar_silhouette(image: np.ndarray, ann: Annotation, scene: Scene) -> tup
     if silhouette.source == "grabcut":
         mask = without_thin_parts(mask, ann.bbox[3])
         if mask.any():
-            mask = grounded(with_lower_parts(mask, image, ann.bbox, nearer_boxes(ann, scene)), ann.bbox)
+            mask = grounded(with_lower_parts(mask, image, ann.bbox, nearer), ann.bbox)
     return mask, silhouette.source
 
 
-def _cut_out(image: np.ndarray, ann: Annotation, scene: Scene) -> tuple[Exemplar | None, str]:
-    mask, source = exemplar_silhouette(image, ann, scene)
+def _cut_out(image: np.ndarray, ann: Annotation, scene: Scene, nearer: np.ndarray) -> tuple[Exemplar | None, str]:
+    mask, source = exemplar_silhouette(image, ann, nearer)
     if not mask.any():
         return None, "no_silhouette"
     rows = np.flatnonzero(mask.any(axis=1))
