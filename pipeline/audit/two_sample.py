@@ -195,8 +195,10 @@ def two_sample_test(
     labels = np.repeat(np.array([0, 1], np.int64), n)
     if groups_b is None:
         fold_of = np.concatenate([rng.permutation(n) % folds, rng.permutation(n) % folds])
+    elif len(groups_b) != len(b):
+        raise ValueError(f"groups_b needs one key per crop of b: {len(groups_b)} keys for {len(b)} crops")
     else:
-        fold_of = np.concatenate([rng.permutation(n) % folds, group_folds(groups_b, len(b), index_b, folds, rng)])
+        fold_of = np.concatenate([rng.permutation(n) % folds, group_folds([groups_b[i] for i in index_b], folds, rng)])
     scores = np.zeros(2 * n, np.float64)
     for fold in range(folds):
         train, held = fold_of != fold, fold_of == fold
@@ -218,14 +220,9 @@ def two_sample_test(
     )
 
 
-def group_folds(
-    groups: Sequence[Hashable], size: int, index: np.ndarray, folds: int, rng: np.random.Generator
-) -> np.ndarray:
-    """The fold of each crop ``index`` of a side whose crops belong to ``groups``: the groups, shuffled,
-    dealt to the folds largest first, each to the fold with the fewest crops so far (balanced folds)."""
-    if len(groups) != size:
-        raise ValueError(f"groups_b needs one key per crop of b: {len(groups)} keys for {size} crops")
-    keys = [groups[i] for i in index]
+def group_folds(keys: Sequence[Hashable], folds: int, rng: np.random.Generator) -> np.ndarray:
+    """The fold of each crop whose group is ``keys[i]``: the groups, shuffled, dealt to the folds largest
+    first, each to the fold with the fewest crops so far (balanced folds)."""
     distinct = list(dict.fromkeys(keys))
     if len(distinct) < folds:
         raise ValueError(f"a grouped test needs at least {folds} groups, got {len(distinct)}")
