@@ -34,7 +34,7 @@ from pipeline.report import write_report
 from .conftest import SEED_SCENES
 
 # Small settings keep each control to a few seconds; the controls are strong enough for them.
-FAST = {"folds": 4, "epochs": 30}
+FAST = {"folds": 4, "epochs": 30, "repeats": 1}
 
 
 @pytest.fixture(autouse=True, scope="module")
@@ -141,6 +141,23 @@ def test_two_sample_test_is_deterministic_and_checks_input(test_crops):
         two_sample_test(crops, crops[:, :16, :16], rng=0)
     with pytest.raises(ValueError, match="uint8"):
         two_sample_test(crops.astype(np.float32), crops, rng=0)
+
+
+def test_repeats_average_tests_on_new_subsamples(test_crops):
+    crops = test_crops["works_trailer"].test
+    small, large = crops[:10], crops[10:40]
+    one = two_sample_test(small, large, rng=3, folds=2, epochs=2)
+    three = two_sample_test(small, large, rng=3, folds=2, epochs=2, repeats=3)
+    # The first repeat is the single test (same stream of random numbers).
+    assert three.accuracies[0] == one.accuracy and len(three.accuracies) == 3
+    assert three.accuracy == pytest.approx(np.mean(three.accuracies))
+    assert three.trials == one.trials == 20
+    # Each repeat draws 10 of the 30 larger-side crops anew: together they use more than one test does.
+    assert len(one.index_b) == 10 and len(three.index_b) > 10
+    assert len(three.score_b) == len(three.index_b)
+    assert three.to_dict()["repeats"] == list(three.accuracies)
+    with pytest.raises(ValueError, match="repeats >= 1"):
+        two_sample_test(small, large, rng=0, repeats=0)
 
 
 def test_held_out_exemplars_separate_repetition_from_appearance(test_crops):
@@ -342,10 +359,13 @@ def test_cli_audit_prints_the_table_and_refuses_bad_input(tmp_path):
     run = _fake_run(tmp_path / "run", blur=2.0)
     cli = CliRunner()
     args = ["audit", str(run), "--real", str(SEED_SCENES / "test.json"), "--folds", "4", "--epochs", "30"]
+    args += ["--repeats", "2"]
     ok = cli.invoke(app, [*args, "--feature-steps", "100"])
     assert ok.exit_code == 0, ok.output
     assert "tractor" in ok.stdout and "real vs synthetic" in ok.stdout
-    figures = read_audit(run)["classes"]["tractor"]
+    audit = read_audit(run)
+    figures = audit["classes"]["tractor"]
+    assert audit["settings"]["repeats"] == 2 and len(figures["two_sample"]["repeats"]) == 2
     assert figures["two_sample"]["accuracy"] > 0.8  # blurred real tractors are found out
     assert figures["sharpness"]["ratio"] < 0.8
     bad = cli.invoke(app, [*args, "--classes", "tractor,tank"])

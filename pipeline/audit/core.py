@@ -33,7 +33,7 @@ from .instances import (
     synthetic_instances,
 )
 from .sharpness import box_fit, compare_sharpness
-from .two_sample import two_sample_test
+from .two_sample import TestSettings
 
 AUDIT_JSON = "audit.json"
 """File the audit writes into the run folder (the report's audit section reads it)."""
@@ -95,15 +95,15 @@ def _class_figures(
     train: Crops,
     net: torch.nn.Module,
     *,
-    folds: int,
-    epochs: int,
+    tests: TestSettings,
     rng: np.random.Generator,
 ) -> tuple[dict[str, Any], np.ndarray | None, dict[str, Any] | None]:
     """Figures of one class; also the synthetic held-out scores and the near-copy record (for examples)."""
     out: dict[str, Any] = {"two_sample": None, "floor": None, "coverage": None, "near_copies": None, "notes": []}
     scores = None
+    folds = tests.folds
     if min(len(syn), len(real)) >= folds:
-        test = two_sample_test(real.test, syn.test, folds=folds, epochs=epochs, rng=rng)
+        test = tests.run(real.test, syn.test, rng)
         out["two_sample"] = test.to_dict()
         scores = np.full(len(syn), np.nan)
         scores[test.index_b] = test.score_b
@@ -112,9 +112,7 @@ def _class_figures(
     halves = rng.permutation(len(real))
     half = len(real) // 2
     if half >= folds:
-        floor = two_sample_test(
-            real.test[halves[:half]], real.test[halves[half : 2 * half]], folds=folds, epochs=epochs, rng=rng
-        )
+        floor = tests.run(real.test[halves[:half]], real.test[halves[half : 2 * half]], rng)
         out["floor"] = floor.to_dict()
     else:
         out["notes"].append(f"real-half floor needs {2 * folds} real instances, got {len(real)}")
@@ -131,25 +129,25 @@ def _class_figures(
         out["notes"].append("near-copies need training, held-out and synthetic instances of the class")
     out["sharpness"] = compare_sharpness(syn.sharpness, syn.heights, real.sharpness, real.heights)
     out["box_fit"] = {"synthetic": box_fit(syn.instances), "real": box_fit(real.instances)}
-    out["unseen_exemplars"] = _unseen_exemplars(syn, real, folds=folds, epochs=epochs, rng=rng, notes=out["notes"])
+    out["unseen_exemplars"] = _unseen_exemplars(syn, real, tests=tests, rng=rng, notes=out["notes"])
     return out, scores, copies
 
 
 def _unseen_exemplars(
-    syn: Crops, real: Crops, *, folds: int, epochs: int, rng: np.random.Generator, notes: list[str]
+    syn: Crops, real: Crops, *, tests: TestSettings, rng: np.random.Generator, notes: list[str]
 ) -> dict[str, Any] | None:
     """The two-sample test with each exemplar's instances held out together (``None`` with a note when
     the synthetic instances do not all name an exemplar, or name fewer than ``folds``)."""
     sources = [item.exemplar for item in syn.instances]
     if not sources or any(s is None for s in sources):
         return None
-    if min(len(syn), len(real)) < folds:
+    if min(len(syn), len(real)) < tests.folds:
         return None  # the plain test's note says so
-    if len(set(sources)) < folds:
-        notes.append(f"the test on unseen exemplars needs {folds} exemplars, got {len(set(sources))}")
+    if len(set(sources)) < tests.folds:
+        notes.append(f"the test on unseen exemplars needs {tests.folds} exemplars, got {len(set(sources))}")
         return None
     try:
-        return two_sample_test(real.test, syn.test, folds=folds, epochs=epochs, rng=rng, groups_b=sources).to_dict()
+        return tests.run(real.test, syn.test, rng, groups_b=sources).to_dict()
     except ValueError as exc:
         notes.append(f"the test on unseen exemplars: {exc}")
         return None
@@ -178,8 +176,7 @@ def _audit_class(
     net: torch.nn.Module,
     cache: dict[Path, np.ndarray],
     *,
-    folds: int,
-    epochs: int,
+    tests: TestSettings,
     rng: np.random.Generator,
     say: Callable[[str], None],
 ) -> dict[str, Any]:
@@ -188,7 +185,7 @@ def _audit_class(
     say(f"{name}: cropping {len(syn_items)} synthetic, {len(real_items)} held-out, {len(train_items)} training")
     syn, real, train = (crop_instances(items, images=cache) for items in (syn_items, real_items, train_items))
     say(f"{name}: two-sample tests, coverage, near-copies")
-    figures, scores, copies = _class_figures(syn, real, train, net, folds=folds, epochs=epochs, rng=rng)
+    figures, scores, copies = _class_figures(syn, real, train, net, tests=tests, rng=rng)
     entry = {
         "n_synthetic": len(syn),
         "n_real": len(real),
@@ -222,6 +219,7 @@ def audit_run(
     seed: int = 0,
     folds: int = 5,
     epochs: int = 30,
+    repeats: int = 5,
     feature_steps: int = feat.FEATURE_STEPS,
     threads: int = 1,
     progress: Callable[[str], None] | None = None,
@@ -246,6 +244,9 @@ def audit_run(
         Seeds every random choice; equal inputs and seed give equal figures.
     folds, epochs : int
         Two-sample test: k of the k-fold cross-validation, and training passes per fold.
+    repeats : int
+        Two-sample tests per figure, each on a new subsample (see :func:`two_sample_test`); the
+        accuracies are their means.
     feature_steps : int
         Training steps of the feature network.
     threads : int
@@ -269,7 +270,8 @@ def audit_run(
         Unreadable inputs, or a held-out split that made synthetic images of the run.
     """
     # 1. check options
-    _check_options(seed=seed, folds=folds, epochs=epochs, feature_steps=feature_steps, threads=threads)
+    _check_options(seed=seed, folds=folds, epochs=epochs, repeats=repeats, feature_steps=feature_steps, threads=threads)
+    tests = TestSettings(folds=folds, epochs=epochs, repeats=repeats)
     say = progress or (lambda _line: None)
 
     # 2. the run, its held-out split (which must not have made any of its images) and its training split
@@ -285,7 +287,7 @@ def audit_run(
         say(f"training the feature network on {train_path} ({feature_steps} steps)")
         net = feat.train_feature_net(train_set, steps=feature_steps, rng=seed)
         order = [c.name for c in run.labels.categories]
-        figures = _audit_classes(run.root, groups, net, order, seed=seed, folds=folds, epochs=epochs, say=say)
+        figures = _audit_classes(run.root, groups, net, order, seed=seed, tests=tests, say=say)
 
     # 4. write audit.json
     result = {
@@ -294,7 +296,7 @@ def audit_run(
         "heldout": str(real),
         "train": str(train_path),
         "seed": seed,
-        "settings": _settings(folds=folds, epochs=epochs, feature_steps=feature_steps),
+        "settings": _settings(tests, feature_steps=feature_steps),
         "model": _model_identity(run.labels),
         "classes": figures,
     }
@@ -302,11 +304,11 @@ def audit_run(
     return result
 
 
-def _check_options(*, seed: int, folds: int, epochs: int, feature_steps: int, threads: int) -> None:
-    if folds < 2 or epochs < 1 or feature_steps < 1 or threads < 1:
+def _check_options(*, seed: int, folds: int, epochs: int, repeats: int, feature_steps: int, threads: int) -> None:
+    if folds < 2 or epochs < 1 or repeats < 1 or feature_steps < 1 or threads < 1:
         raise UsageError(
-            f"need folds >= 2, epochs >= 1, feature steps >= 1, threads >= 1; got {folds}, {epochs}, "
-            f"{feature_steps}, {threads}"
+            "need folds >= 2, epochs >= 1, repeats >= 1, feature steps >= 1, threads >= 1; got "
+            f"{folds}, {epochs}, {repeats}, {feature_steps}, {threads}"
         )
     if not isinstance(seed, int) or seed < 0:
         raise UsageError(f"--seed must be an integer >= 0, got {seed!r}")
@@ -330,8 +332,7 @@ def _audit_classes(
     order: Sequence[str],
     *,
     seed: int,
-    folds: int,
-    epochs: int,
+    tests: TestSettings,
     say: Callable[[str], None],
 ) -> dict[str, dict[str, Any]]:
     """:func:`_audit_class` of every group; a class's seed is ``(seed, its index in order)``, so each
@@ -344,8 +345,7 @@ def _audit_classes(
             sides,
             net,
             cache,
-            folds=folds,
-            epochs=epochs,
+            tests=tests,
             rng=np.random.default_rng([seed, order.index(name)]),
             say=say,
         )
@@ -353,11 +353,12 @@ def _audit_classes(
     }
 
 
-def _settings(*, folds: int, epochs: int, feature_steps: int) -> dict[str, Any]:
+def _settings(tests: TestSettings, *, feature_steps: int) -> dict[str, Any]:
     """The audit's settings as recorded in ``audit.json``, the fixed ones included."""
     return {
-        "folds": folds,
-        "epochs": epochs,
+        "folds": tests.folds,
+        "epochs": tests.epochs,
+        "repeats": tests.repeats,
         "test_crop_px": TEST_CROP_PX,
         "feature_crop_px": CROP_PX,
         "min_height_px": MIN_HEIGHT_PX,

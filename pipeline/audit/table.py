@@ -61,8 +61,9 @@ def legend(result: dict[str, Any]) -> str:
     """What the columns mean, with the settings of ``result``."""
     s = result["settings"]
     return (
-        f"Accuracy: {s['folds']}-fold held-out accuracy of a small CNN telling real from synthetic crops "
-        "[95% Wilson interval]; 0.5 means indistinguishable, and 'real vs real' (two halves of the real "
+        f"Accuracy: {s['folds']}-fold held-out accuracy of a small CNN telling real from synthetic crops, "
+        f"mean of {s.get('repeats', 1)} tests on new subsamples [95% Wilson interval of one test]; 0.5 means "
+        "indistinguishable, and 'real vs real' (two halves of the real "
         "instances) is the floor. 'Exemplars held out': the same test with all instances made from one "
         "exemplar in one fold, so the network judges composites of real objects it has never seen; the gap "
         "to the plain test is what repeating few exemplars gives away. Precision / recall: improved "
