@@ -143,9 +143,12 @@ def _one_object(job, spec, ctx, bank, index, scene, image, surface, boxes, taken
             return Failure("placement", placement.reason, {"failures": dict(placement.failures)})
         mirror = bool(rng.random() < spec.options["mirror"])
         hue = float(rng.uniform(-1.0, 1.0) * spec.options["hue_shift_deg"])
+        # The row is rounded to a pixel edge, so the model's height there may pass the target by a
+        # fraction of a pixel; the exemplar reaches the target, and is never enlarged beyond the limit.
+        placed_height = min(placement.expected_height, exemplar.height * bank.max_upscale)
         placed = place_exemplar(
             image, exemplar, bottom_row=int(placement.bottom_row), centre_col=placement.centre_col,
-            height_px=placement.expected_height, mirror=mirror, hue_deg=hue,
+            height_px=placed_height, mirror=mirror, hue_deg=hue,
         )  # fmt: skip
         if placed is None:
             last = Failure("placement", "the placed exemplar would leave the image")
