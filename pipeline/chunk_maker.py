@@ -17,7 +17,7 @@ from typing import TYPE_CHECKING, Any
 from .dataset import Dataset, Scene
 from .errors import ModelError
 from .generator import Generator
-from .job_record import attempt_entry, output_entry
+from .job_record import attempt_entry, attempt_scene, output_entry
 from .judge import judge
 from .plan import Job
 from .recipe import Recipe
@@ -192,7 +192,7 @@ class ChunkMaker:
         """The attempt's manifest entry, with its image written; and its output if it was accepted."""
         outcome, verdicts = result
         recipe = self.setup.recipe
-        scene = self.setup.dataset.scenes[job.sources[attempt][0]]
+        scene = attempt_scene(job, attempt, outcome, self.setup.dataset)
         spec = recipe.stages[job.stage]
         target = self.setup.dataset.category_by_name(spec.target_class).id
         entry = attempt_entry(job, attempt, scene, outcome, verdicts, target_category_id=target)

@@ -11,13 +11,19 @@ from typing import Any
 
 import numpy as np
 
-from .dataset import Annotation, Scene
+from .dataset import Annotation, Dataset, Scene
 from .filters import FilterLimits, phash
 from .plan import Job
 from .provenance import KEY, file_sha256, image_provenance, kept_annotation_provenance, new_annotation_provenance
 from .recipe import StageSpec
 from .rle import area as mask_area
 from .stages import Candidate, Failure
+
+
+def attempt_scene(job: Job, attempt: int, outcome: Candidate | Failure, dataset: Dataset) -> Scene:
+    """The scene an attempt was made from: the candidate's (an attempt may move on from a planned scene
+    without room for its objects), else the planned one."""
+    return outcome.scene if isinstance(outcome, Candidate) else dataset.scenes[job.sources[attempt][0]]
 
 
 def attempt_entry(
@@ -31,6 +37,9 @@ def attempt_entry(
         "boxes": [] if isinstance(outcome, Failure) else subject_boxes(outcome, target_category_id),
         "verdicts": [v.to_dict() for v in verdicts],
     }
+    passed_over = outcome.details.get("scenes_without_room")  # scenes the attempt moved on from
+    if passed_over:
+        entry["scenes_without_room"] = list(passed_over)
     if isinstance(outcome, Failure):
         entry.update(accepted=False, rejected_by=[outcome.filter], reason=outcome.reason)
         return entry

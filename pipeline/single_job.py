@@ -25,7 +25,7 @@ from .chunk_maker import ChunkMaker, accepted, open_model
 from .errors import UsageError
 from .files import write_bytes_atomic, write_json_atomic
 from .generator import Generator
-from .job_record import attempt_entry, output_entry
+from .job_record import attempt_entry, attempt_scene, output_entry
 from .plan import Job, Plan
 from .recipe import Recipe
 from .runner import prepare
@@ -98,7 +98,7 @@ def run_job(
         if other.key != job.key:
             continue
         candidate, verdicts = outcome
-        scene = setup.dataset.scenes[job.sources[attempt][0]]
+        scene = attempt_scene(job, attempt, candidate, setup.dataset)
         entry = attempt_entry(job, attempt, scene, candidate, verdicts, target_category_id=target)
         if not isinstance(candidate, Failure):
             entry["image"] = _write_png(out / f"{name}_a{attempt}.png", candidate.image)

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 from pathlib import Path
+from types import SimpleNamespace
 
 import numpy as np
 import pytest
@@ -24,9 +25,17 @@ from pipeline.exemplars import (
     nearer_boxes,
     with_lower_parts,
 )
+from pipeline.filters import FilterLimits
 from pipeline.geometry import fit_ground
+from pipeline.plan import Job
 from pipeline.silhouette import object_silhouette, repaint_mask
-from pipeline.stages.insert_exemplar import MIN_VISIBLE_SHARE, exemplar_slot, hide_behind
+from pipeline.stages.insert_exemplar import (
+    MIN_VISIBLE_SHARE,
+    SCENE_TRIES,
+    exemplar_slot,
+    hide_behind,
+    scenes_to_try,
+)
 
 from .conftest import SEED_SCENES
 from .fakes import AlwaysVerifier, BlockGenerator, ShadeGenerator
@@ -123,6 +132,39 @@ def test_same_seed_same_bytes(tmp_path):
     for out in ("a", "b"):
         run_recipe(recipe.with_output(tmp_path / out), generator=ShadeGenerator(), verifier=AlwaysVerifier())
     assert folder_bytes(tmp_path / "a") == folder_bytes(tmp_path / "b")
+
+
+def test_an_attempt_moves_on_from_scenes_without_room(made):
+    _, root, _ = made
+    entries = [json.loads(line) for line in (root / "manifest.jsonl").read_text().splitlines()]
+    moved = [e for e in entries if e.get("scenes_without_room")]
+    assert moved, "some planned scenes of the 16 jobs have no room for the object at its target height"
+    for entry in moved:
+        passed = [s["image_id"] for s in entry["scenes_without_room"]]
+        assert all(s["filter"] in ("placement", "occlusion") for s in entry["scenes_without_room"])
+        assert len(set(passed)) == len(passed)
+        if entry["boxes"]:  # drawn: in a scene other than those passed over, which the manifest names
+            assert entry["source_image_id"] not in passed and len(passed) < SCENE_TRIES
+        else:  # no room in any of the scenes tried
+            assert entry["rejected_by"] in (["placement"], ["occlusion"]) and len(passed) == SCENE_TRIES
+    labels = json.loads((root / "labels.json").read_text())
+    for image in labels["images"]:
+        record = image["rarefill"]
+        passed = [s["image_id"] for s in record["details"].get("scenes_without_room", [])]
+        entry = next(e for e in entries if e["job"] == record["job"]["key"] and e["accepted"])
+        assert record["source"]["image_id"] == entry["source_image_id"] not in passed
+
+
+def test_scenes_to_try_start_with_the_planned_one(train):
+    limits = FilterLimits(max_objects=6)
+    spec = SimpleNamespace(options={"objects_per_image": (1, 2)})
+    ctx = SimpleNamespace(dataset=train, limits=limits)
+    job = Job(0, 3, 1234, 0, ((7, -1), (9, -1)))
+    first = scenes_to_try(job, 1, spec, ctx)
+    assert [s.id for s in first] == [s.id for s in scenes_to_try(job, 1, spec, ctx)]  # same seed, same scenes
+    assert first[0].id == train.scenes[9].id and len({s.id for s in first}) == len(first) == SCENE_TRIES
+    assert all(sum(not a.iscrowd for a in s.annotations) + 1 <= 6 for s in first[1:])
+    assert [s.id for s in scenes_to_try(job, 0, spec, ctx)] != [s.id for s in first]
 
 
 def test_accepted_heights_follow_the_real_ones(tmp_path, train):

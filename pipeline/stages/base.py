@@ -22,6 +22,11 @@ from ..recipe import StageSpec
 from ..surface import Surface
 
 
+def takes_objects(scene: Scene, count: int, limits: FilterLimits) -> bool:
+    """Can ``scene`` take ``count`` new objects within the objects-per-image limit?"""
+    return sum(not a.iscrowd for a in scene.annotations) + count <= limits.max_objects
+
+
 @dataclass(frozen=True)
 class StageContext:
     """Everything a stage may read; nothing in it changes during a run.

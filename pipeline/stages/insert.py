@@ -44,7 +44,7 @@ from ..recipe import StageSpec
 from ..refit import refit_box
 from ..surface import Surface
 from . import insert_exemplar
-from .base import Candidate, Draft, Failure, NewObject, StageContext
+from .base import Candidate, Draft, Failure, NewObject, StageContext, takes_objects
 
 OCCLUSION_TRIES = 8
 """Placements drawn per object until its repainted region leaves every nearer object alone; the last one
@@ -59,11 +59,7 @@ in real data."""
 def eligible(dataset: Dataset, spec: StageSpec, limits: FilterLimits) -> list[tuple[int, int]]:
     """Scenes that can take the wanted number of new objects within the objects-per-image limit."""
     least = spec.options["objects_per_image"][0]
-    return [
-        (i, -1)
-        for i, scene in enumerate(dataset.scenes)
-        if sum(not a.iscrowd for a in scene.annotations) + least <= limits.max_objects
-    ]
+    return [(i, -1) for i, scene in enumerate(dataset.scenes) if takes_objects(scene, least, limits)]
 
 
 def object_mask(box: Sequence[float], shape: tuple[int, int], margin: float) -> np.ndarray:

@@ -21,7 +21,7 @@ import cv2
 import numpy as np
 
 from ..compose import Placed, detail_levels, feathered_paste, keep_detail, place_exemplar
-from ..dataset import Annotation
+from ..dataset import Annotation, Scene
 from ..exemplars import ExemplarBank, draw_height
 from ..generator import InpaintRequest
 from ..geometry import ground_for
@@ -30,7 +30,7 @@ from ..plan import Job, derive_seed
 from ..recipe import StageSpec
 from ..rle import encode as encode_rle
 from ..silhouette import RepaintRegion, box_pixels, object_silhouette, repaint_mask, segmentation_mask
-from .base import Candidate, Draft, Failure, NewObject, StageContext
+from .base import Candidate, Draft, Failure, NewObject, StageContext, takes_objects
 
 PLACEMENT_TRIES = 8
 """Placements drawn per object until nearer objects hide little enough of it and its repainted region
@@ -49,6 +49,12 @@ seed scenes about twice, against their rendered visibility)."""
 MIN_VISIBLE_SHARE = 0.25
 """A farther object keeps its label, its box clipped to what stays visible, while at least this share of
 its pixels (segmentation, else box) stays visible; less, and it leaves the labels (listed in provenance)."""
+
+SCENE_TRIES = 4
+"""Scenes an attempt looks at, its planned one first, until one has room for the new objects."""
+
+NO_ROOM = ("placement", "occlusion")
+"""Failures that show a scene has no room for the objects (found before anything is drawn)."""
 
 HEIGHT_DRAWS = 100
 """Target heights drawn until one an exemplar can reach within the upscale limit: the target distribution
@@ -88,12 +94,55 @@ def exemplar_slot(job_slot: int, index: int, per_image: int) -> int:
 
 
 def draft(job: Job, attempt: int, spec: StageSpec, ctx: StageContext, wanted: int, low: int) -> Draft | Failure:
-    """Place ``wanted`` exemplars (at least ``low``) into the attempt's scene; requests when harmonising."""
-    scene = ctx.dataset.scenes[job.sources[attempt][0]]
-    rng = np.random.default_rng(job.attempt_seed(attempt))
+    """Place ``wanted`` exemplars (at least ``low``) into the attempt's scene; requests when harmonising.
+
+    A scene with no room for the objects (no plausible column at the row their height needs, or nearer
+    objects would hide too much of them) is found before anything is drawn; the attempt then moves to
+    another scene (:func:`scenes_to_try`), up to :data:`SCENE_TRIES` in all, so that an attempt is a
+    composite drawn and judged. The scenes passed over are listed in the draft's provenance.
+    """
     bank = bank_for(spec, ctx)
     if not bank.exemplars:
         return Failure("exemplar", f"no usable real {spec.target_class} to insert ({bank.summary()['left_out']})")
+    passed_over: list[dict] = []
+    for k, scene in enumerate(scenes_to_try(job, attempt, spec, ctx)):
+        # The planned scene keeps the attempt's own seed: an attempt that finds room there is unchanged.
+        seed = job.attempt_seed(attempt) if k == 0 else derive_seed(job.attempt_seed(attempt), "scene", k)
+        made = _draft_in(scene, job, attempt, seed, spec, ctx, bank, wanted, low)
+        if not (isinstance(made, Failure) and made.filter in NO_ROOM):
+            break
+        passed_over.append({"image_id": scene.id, "filter": made.filter, "reason": made.reason})
+    if isinstance(made, Failure):
+        return replace(made, details={**made.details, "scenes_without_room": passed_over})
+    if passed_over:
+        made = replace(made, state={**made.state, "scenes_without_room": passed_over})
+    return made
+
+
+def scenes_to_try(job: Job, attempt: int, spec: StageSpec, ctx: StageContext) -> list[Scene]:
+    """The attempt's planned scene, then up to ``SCENE_TRIES - 1`` others drawn from the attempt's seed
+    among the scenes that can take the stage's objects (same seed, same scenes)."""
+    first = job.sources[attempt][0]
+    least = spec.options["objects_per_image"][0]
+    room = [i for i, scene in enumerate(ctx.dataset.scenes) if i != first and takes_objects(scene, least, ctx.limits)]
+    rng = np.random.default_rng(derive_seed(job.attempt_seed(attempt), "scenes"))
+    others = rng.permutation(len(room))[: SCENE_TRIES - 1]
+    return [ctx.dataset.scenes[first], *(ctx.dataset.scenes[room[k]] for k in others)]
+
+
+def _draft_in(
+    scene: Scene,
+    job: Job,
+    attempt: int,
+    seed: int,
+    spec: StageSpec,
+    ctx: StageContext,
+    bank: ExemplarBank,
+    wanted: int,
+    low: int,
+) -> Draft | Failure:
+    """The draft of the attempt in ``scene``, its placements drawn from ``seed``."""
+    rng = np.random.default_rng(seed)
     image = scene.load_rgb()
     surface = ctx.surface(scene)
     boxes = [a.bbox for a in scene.annotations if not a.iscrowd]
@@ -246,6 +295,8 @@ def complete(draft_: Draft, frames: Sequence[np.ndarray], ctx: StageContext) -> 
     covers = [(o["placed"].silhouette, o["placement"].bottom_row) for o in objects]
     kept, dropped, clipped = hide_behind(draft_.scene.annotations, covers, out.shape[:2])
     details = {"objects": len(new), "appearance": "exemplar", "harmonised": bool(draft_.state["harmonise"])}
+    if draft_.state.get("scenes_without_room"):
+        details["scenes_without_room"] = draft_.state["scenes_without_room"]
     if clipped:
         details["clipped"] = clipped
     checked = tuple(-1 - i for i in range(len(new)))
