@@ -35,6 +35,7 @@ from pipeline.stages.insert_exemplar import (
     exemplar_slot,
     hide_behind,
     scenes_to_try,
+    target_height,
 )
 
 from .conftest import SEED_SCENES
@@ -165,6 +166,20 @@ def test_scenes_to_try_start_with_the_planned_one(train):
     assert first[0].id == train.scenes[9].id and len({s.id for s in first}) == len(first) == SCENE_TRIES
     assert all(sum(not a.iscrowd for a in s.annotations) + 1 <= 6 for s in first[1:])
     assert [s.id for s in scenes_to_try(job, 0, spec, ctx)] != [s.id for s in first]
+
+
+def test_target_heights_stay_above_the_smallest_real_one(train):
+    bank = build_bank(train, "works_trailer")
+    smallest = float(bank.heights.min())
+    spec = SimpleNamespace(options={"heights": "real"})
+    heights = np.array([target_height(spec, bank, Job(0, slot, 1000 + slot, 0, ()), 0) for slot in range(400)])
+    assert heights.min() >= smallest
+    assert all(bank.usable_for(h) for h in heights)  # some exemplar reaches each
+    # Still the kernel density estimate, not the 20 real values: most draws lie between them.
+    assert np.mean(np.isin(np.round(heights, 6), np.round(bank.heights, 6))) < 0.05
+    # A recipe's own range is taken as given, below the smallest real height too.
+    ranged = SimpleNamespace(options={"heights": (8.0, 20.0)})
+    assert min(target_height(ranged, bank, Job(0, s, s, 0, ()), 0) for s in range(50)) < smallest
 
 
 def test_accepted_heights_follow_the_real_ones(tmp_path, train):

@@ -58,7 +58,8 @@ NO_ROOM = ("placement", "occlusion")
 
 HEIGHT_DRAWS = 100
 """Target heights drawn until one an exemplar can reach within the upscale limit: the target distribution
-is the real one cut where the bank's tallest instance ends (a taller one would fail every attempt)."""
+is the real one cut where the bank's tallest instance ends (a taller one would fail every attempt) and
+below the smallest real height (see :func:`target_height`)."""
 
 
 def bank_for(spec: StageSpec, ctx: StageContext) -> ExemplarBank:
@@ -70,12 +71,21 @@ def bank_for(spec: StageSpec, ctx: StageContext) -> ExemplarBank:
 
 
 def target_height(spec: StageSpec, bank: ExemplarBank, job: Job, index: int) -> float:
-    """The box height object ``index`` of ``job`` is made at: the same for every attempt of the job."""
+    """The box height object ``index`` of ``job`` is made at: the same for every attempt of the job.
+
+    With ``heights = "real"`` the kernel density estimate is cut below the smallest real box height: a
+    data set's labels often stop at some size (annotators skip tiny objects), and below its smallest real
+    instance nothing says what the class looks like or whether it would be labelled. (In the seed scenes the
+    kernel's tail reached 11 px trailers against 16.5 px for the smallest real one of any split, and the
+    verifier turned down two of three of those.) A recipe's own ``heights = [low, high]`` is taken as given.
+    """
     rng = np.random.default_rng(derive_seed(job.seed, "height", index))
     wanted = spec.options["heights"]
     for _ in range(HEIGHT_DRAWS):
         if wanted == "real":
             height = draw_height(bank.heights, bank.bandwidth, rng)
+            if height < bank.heights.min():
+                continue
         else:
             height = float(math.exp(rng.uniform(math.log(wanted[0]), math.log(wanted[1]))))
         if bank.usable_for(height):
