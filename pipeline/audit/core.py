@@ -33,7 +33,7 @@ from .instances import (
     synthetic_instances,
 )
 from .sharpness import box_fit, compare_sharpness
-from .two_sample import TestSettings
+from .two_sample import TwoSampleSettings
 
 AUDIT_JSON = "audit.json"
 """File the audit writes into the run folder (the report's audit section reads it)."""
@@ -95,7 +95,7 @@ def _class_figures(
     train: Crops,
     net: torch.nn.Module,
     *,
-    tests: TestSettings,
+    tests: TwoSampleSettings,
     rng: np.random.Generator,
 ) -> tuple[dict[str, Any], np.ndarray | None, dict[str, Any] | None]:
     """Figures of one class; also the synthetic held-out scores and the near-copy record (for examples)."""
@@ -134,7 +134,7 @@ def _class_figures(
 
 
 def _unseen_exemplars(
-    syn: Crops, real: Crops, *, tests: TestSettings, rng: np.random.Generator, notes: list[str]
+    syn: Crops, real: Crops, *, tests: TwoSampleSettings, rng: np.random.Generator, notes: list[str]
 ) -> dict[str, Any] | None:
     """The two-sample test with each exemplar's instances held out together (``None`` with a note when
     the synthetic instances do not all name an exemplar, or name fewer than ``folds``)."""
@@ -176,7 +176,7 @@ def _audit_class(
     net: torch.nn.Module,
     cache: dict[Path, np.ndarray],
     *,
-    tests: TestSettings,
+    tests: TwoSampleSettings,
     rng: np.random.Generator,
     say: Callable[[str], None],
 ) -> dict[str, Any]:
@@ -271,7 +271,7 @@ def audit_run(
     """
     # 1. check options
     _check_options(seed=seed, folds=folds, epochs=epochs, repeats=repeats, feature_steps=feature_steps, threads=threads)
-    tests = TestSettings(folds=folds, epochs=epochs, repeats=repeats)
+    tests = TwoSampleSettings(folds=folds, epochs=epochs, repeats=repeats)
     say = progress or (lambda _line: None)
 
     # 2. the run, its held-out split (which must not have made any of its images) and its training split
@@ -332,7 +332,7 @@ def _audit_classes(
     order: Sequence[str],
     *,
     seed: int,
-    tests: TestSettings,
+    tests: TwoSampleSettings,
     say: Callable[[str], None],
 ) -> dict[str, dict[str, Any]]:
     """:func:`_audit_class` of every group; a class's seed is ``(seed, its index in order)``, so each
@@ -353,7 +353,7 @@ def _audit_classes(
     }
 
 
-def _settings(tests: TestSettings, *, feature_steps: int) -> dict[str, Any]:
+def _settings(tests: TwoSampleSettings, *, feature_steps: int) -> dict[str, Any]:
     """The audit's settings as recorded in ``audit.json``, the fixed ones included."""
     return {
         "folds": tests.folds,

@@ -63,8 +63,8 @@ def legend(result: dict[str, Any]) -> str:
     return (
         f"Accuracy: {s['folds']}-fold held-out accuracy of a small CNN telling real from synthetic crops, "
         f"mean of {s.get('repeats', 1)} tests on new subsamples [95% Wilson interval of one test]; 0.5 means "
-        "indistinguishable, and 'real vs real' (two halves of the real "
-        "instances) is the floor. 'Exemplars held out': the same test with all instances made from one "
+        "indistinguishable, and 'real vs real' (two halves of the real instances) is the floor. 'Exemplars "
+        "held out': the same test with all instances made from one "
         "exemplar in one fold, so the network judges composites of real objects it has never seen; the gap "
         "to the plain test is what repeating few exemplars gives away. Precision / recall: improved "
         f"precision and recall, k = {s['k']}, in features learned from the real training crops (real half "

@@ -80,7 +80,7 @@ class TwoSampleResult:
 
 
 @dataclass(frozen=True)
-class TestSettings:
+class TwoSampleSettings:
     """How the audit runs its two-sample tests (see :func:`two_sample_test`)."""
 
     folds: int = 5
