@@ -18,7 +18,7 @@ import json
 import math
 from collections import Counter
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 import cv2
@@ -69,6 +69,9 @@ class Exemplar:
         The silhouette's pixel bounds inside the crop, end exclusive.
     source : str
         Where the silhouette came from (``"segmentation"`` or ``"grabcut"``).
+    light : (3,) float64 ndarray or None
+        Mean RGB of the whole source image, its light by the grey-world assumption (see
+        :func:`light_gain`).
     """
 
     image_id: int
@@ -78,6 +81,7 @@ class Exemplar:
     alpha: np.ndarray
     bounds: tuple[int, int, int, int]
     source: str
+    light: np.ndarray | None = None
 
     @property
     def height(self) -> int:
@@ -147,6 +151,37 @@ class ExemplarBank:
             tallest = float(max(heights)) if len(heights) else float(self.heights.max())
             out["usable_for_tallest_target"] = {"height_px": round(tallest, 1), "count": len(self.usable_for(tallest))}
         return out
+
+
+LIGHT_GAIN_LIMITS = (0.5, 2.0)
+"""Smallest and largest per-channel gain :func:`light_gain` gives."""
+
+
+def light_gain(exemplar: Exemplar, scene: np.ndarray, strength: float) -> np.ndarray:
+    """Per-channel gains that carry ``exemplar`` from its source image's light into ``scene``'s.
+
+    Each channel is scaled by the ratio of the two images' mean values raised to ``strength`` (0: no
+    change, 1: the full ratio), within :data:`LIGHT_GAIN_LIMITS`: a von Kries-type adaptation with the
+    light of each image estimated by the grey-world assumption.
+
+    References
+    ----------
+    G. Buchsbaum, "A spatial processor model for object colour perception", J. Franklin Inst. 310, 1980
+    (grey world); J. von Kries, 1902, per-channel gain adaptation (common practice, from memory).
+    """
+    if exemplar.light is None or strength == 0:
+        return np.ones(3)
+    target = scene.reshape(-1, 3).mean(axis=0)
+    ratio = (target + 1.0) / (np.asarray(exemplar.light, np.float64) + 1.0)
+    return np.clip(ratio**strength, *LIGHT_GAIN_LIMITS)
+
+
+def relit(exemplar: Exemplar, gain: np.ndarray) -> Exemplar:
+    """``exemplar`` with its pixels scaled per channel by ``gain`` (rounded, clipped to 0-255)."""
+    if np.allclose(gain, 1.0):
+        return exemplar
+    pixels = np.clip(np.rint(exemplar.pixels.astype(np.float64) * gain), 0, 255).astype(np.uint8)
+    return replace(exemplar, pixels=pixels)
 
 
 def nearer_boxes(ann: Annotation, scene: Scene) -> np.ndarray:
@@ -259,7 +294,8 @@ def _cut_out(image: np.ndarray, ann: Annotation, scene: Scene, nearer: np.ndarra
     pixels = np.ascontiguousarray(image[p0:p1, q0:q1])
     alpha = mask[p0:p1, q0:q1].astype(np.float32)
     bounds = (c0 - q0, r0 - p0, c1 - q0, r1 - p0)
-    return Exemplar(scene.id, ann.id, scene.file_name, pixels, alpha, bounds, source), ""
+    light = image.reshape(-1, 3).mean(axis=0)
+    return Exemplar(scene.id, ann.id, scene.file_name, pixels, alpha, bounds, source, light), ""
 
 
 def without_thin_parts(mask: np.ndarray, box_height: float) -> np.ndarray:

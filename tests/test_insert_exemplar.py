@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+from dataclasses import replace
 from pathlib import Path
 from types import SimpleNamespace
 
@@ -22,7 +23,9 @@ from pipeline.exemplars import (
     exemplar_silhouette,
     height_targets,
     ks_distance,
+    light_gain,
     nearer_boxes,
+    relit,
     with_lower_parts,
 )
 from pipeline.filters import FilterLimits
@@ -207,6 +210,22 @@ def test_a_mirrored_exemplar_is_mirrored():
     assert straight.box == mirrored.box == (34.0, 30.0, 12.0, 20.0)
     assert np.array_equal(straight.composite[30:50, 34:46], pixels)
     assert np.array_equal(mirrored.composite[30:50, 34:46], pixels[:, ::-1])
+
+
+def test_light_gain_carries_an_exemplar_into_the_scenes_light():
+    pixels = np.full((20, 10, 3), (200, 120, 60), np.uint8)
+    exemplar = replace(_exemplar(pixels, np.ones((20, 10), np.float32)), light=np.array([99.0, 99.0, 99.0]))
+    dusk = np.full((50, 80, 3), (59, 49, 29), np.uint8)  # 0.6, 0.5 and 0.3 of the source's mean light
+    assert np.allclose(light_gain(exemplar, dusk, 0.0), 1.0)
+    full = light_gain(exemplar, dusk, 1.0)
+    assert np.allclose(full, [0.6, 0.5, 0.5])  # the last channel stops at the lower limit
+    assert np.allclose(light_gain(exemplar, dusk, 0.5), np.sqrt([0.6, 0.5, 0.3]))
+    same = np.full((50, 80, 3), 99, np.uint8)
+    assert np.allclose(light_gain(exemplar, same, 1.0), 1.0)
+    darker = relit(exemplar, full)
+    assert darker.pixels[0, 0].tolist() == [120, 60, 30] and darker.alpha is exemplar.alpha
+    assert relit(exemplar, np.ones(3)) is exemplar
+    assert np.allclose(light_gain(replace(exemplar, light=None), dusk, 1.0), 1.0)
 
 
 def test_placed_exemplar_has_the_wanted_height_and_keeps_the_scene_elsewhere():

@@ -56,6 +56,7 @@ def test_good_recipe(tmp_path):
         "max_upscale": 1.5,
         "mirror": 0.5,
         "hue_shift_deg": 0.0,
+        "light_match": 1.0,
         "heights": "real",
         "mask_margin": 0.12,
     }
@@ -168,7 +169,7 @@ def test_the_probe_arm_recipes_are_one_plan():
     # The probe compares arms; only what an arm tests may differ between them (issue: copy-paste control).
     recipes = {p.stem: load_recipe(p) for p in sorted((Path(__file__).parents[1] / "recipes").glob("probe-*.toml"))}
     assert set(recipes) == {"probe-paste", "probe-exemplar", "probe-exemplar-unfiltered", "probe-generated"}
-    tested = {"appearance", "harmonise"}
+    tested = {"appearance", "harmonise", "light_match"}  # how the object is made; placements stay the same
 
     def plan_of(recipe):
         stages = [(s.kind, s.target_class, s.count, {k: v for k, v in s.options.items() if k not in tested})

@@ -18,6 +18,9 @@ Options (recipe ``[[stage]]`` keys):
     Exemplar mode: probability of mirroring an exemplar left-right (default 0.5).
 ``hue_shift_deg``
     Exemplar mode: hue rotation inside the silhouette, drawn uniformly in ``[-v, v]`` (default 0: off).
+``light_match``
+    Exemplar mode: how far the exemplar's colours are carried from its source image's light into the
+    scene's before it is placed, 0 (off) to 1 (the full ratio of the two images' mean colours; default).
 ``heights``
     Exemplar mode: ``"real"`` (default) draws each target box height from the class's real box heights;
     ``[min, max]`` draws it log-uniformly in that range (pixels).

@@ -22,7 +22,7 @@ import numpy as np
 
 from ..compose import Placed, detail_levels, feathered_paste, keep_detail, place_exemplar
 from ..dataset import Annotation, Scene
-from ..exemplars import ExemplarBank, draw_height
+from ..exemplars import ExemplarBank, draw_height, light_gain, relit
 from ..generator import InpaintRequest
 from ..geometry import ground_for
 from ..placement import NoPlacement, place_at_height
@@ -190,6 +190,8 @@ def _one_object(job, spec, ctx, bank, index, scene, image, surface, boxes, taken
         tallest = max(e.height for e in bank.exemplars)
         reason = f"no exemplar reaches {height:.0f} px within {bank.max_upscale:g}x (tallest {tallest} px)"
         return Failure("exemplar", reason)
+    gain = light_gain(exemplar, image, spec.options["light_match"])
+    exemplar = relit(exemplar, gain)
     x0, y0, x1, y1 = exemplar.bounds
     aspect = (x1 - x0) / (y1 - y0)
     last: Failure | None = None
@@ -229,6 +231,7 @@ def _one_object(job, spec, ctx, bank, index, scene, image, surface, boxes, taken
             "scale": round(placed.scale, 4),
             "mirrored": mirror,
             "hue_shift_deg": round(hue, 2),
+            "light_gain": [round(float(g), 3) for g in gain],
             "target_height_px": round(height, 2),
             "expected_height_px": round(placement.expected_height, 2),
             "amodal_bbox": amodal,
