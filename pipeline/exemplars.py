@@ -15,10 +15,9 @@ so every usable instance is used about equally often.
 from __future__ import annotations
 
 import json
-import math
 from collections import Counter
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import cv2
@@ -26,6 +25,7 @@ import numpy as np
 
 from .dataset import Annotation, Dataset, Scene
 from .geometry import is_usable
+from .height_draws import height_targets, ks_distance
 from .provenance import KEY
 from .silhouette import box_pixels, object_silhouette
 
@@ -151,37 +151,6 @@ class ExemplarBank:
             tallest = float(max(heights)) if len(heights) else float(self.heights.max())
             out["usable_for_tallest_target"] = {"height_px": round(tallest, 1), "count": len(self.usable_for(tallest))}
         return out
-
-
-LIGHT_GAIN_LIMITS = (0.5, 2.0)
-"""Smallest and largest per-channel gain :func:`light_gain` gives."""
-
-
-def light_gain(exemplar: Exemplar, scene: np.ndarray, strength: float) -> np.ndarray:
-    """Per-channel gains that carry ``exemplar`` from its source image's light into ``scene``'s.
-
-    Each channel is scaled by the ratio of the two images' mean values raised to ``strength`` (0: no
-    change, 1: the full ratio), within :data:`LIGHT_GAIN_LIMITS`: a von Kries-type adaptation with the
-    light of each image estimated by the grey-world assumption.
-
-    References
-    ----------
-    G. Buchsbaum, "A spatial processor model for object colour perception", J. Franklin Inst. 310, 1980
-    (grey world); J. von Kries, 1902, per-channel gain adaptation (common practice, from memory).
-    """
-    if exemplar.light is None or strength == 0:
-        return np.ones(3)
-    target = scene.reshape(-1, 3).mean(axis=0)
-    ratio = (target + 1.0) / (np.asarray(exemplar.light, np.float64) + 1.0)
-    return np.clip(ratio**strength, *LIGHT_GAIN_LIMITS)
-
-
-def relit(exemplar: Exemplar, gain: np.ndarray) -> Exemplar:
-    """``exemplar`` with its pixels scaled per channel by ``gain`` (rounded, clipped to 0-255)."""
-    if np.allclose(gain, 1.0):
-        return exemplar
-    pixels = np.clip(np.rint(exemplar.pixels.astype(np.float64) * gain), 0, 255).astype(np.uint8)
-    return replace(exemplar, pixels=pixels)
 
 
 def nearer_boxes(ann: Annotation, scene: Scene) -> np.ndarray:
@@ -386,56 +355,6 @@ def grounded(mask: np.ndarray, box: Sequence[float]) -> np.ndarray:
     out = mask.copy()
     out[low:bottom, int(cols[0]) : int(cols[-1]) + 1] = True
     return out
-
-
-def height_targets(heights: Sequence[float]) -> tuple[np.ndarray, float]:
-    """The real box heights of a class and the log-space bandwidth to draw new heights around them.
-
-    A new target height is a real one times ``exp(bandwidth z)``, ``z`` standard normal: a kernel density
-    estimate of the log heights, so that 20 real instances give a smooth distribution rather than 20 values.
-
-    Returns
-    -------
-    ((N,) float64 ndarray of heights, bandwidth)
-
-    References
-    ----------
-    B. W. Silverman, "Density Estimation for Statistics and Data Analysis", 1986: the rule-of-thumb
-    bandwidth ``0.9 min(sd, IQR / 1.34) n^(-1/5)`` (from memory).
-    """
-    values = np.asarray(heights, dtype=np.float64)
-    values = values[np.isfinite(values) & (values > 0)]
-    if values.size == 0:
-        raise ValueError("no real box heights to draw target heights from")
-    logs = np.log(values)
-    if values.size < 2:
-        return values, 0.0
-    q75, q25 = np.percentile(logs, [75, 25])
-    spread = min(float(np.std(logs, ddof=1)), float(q75 - q25) / 1.34) or float(np.std(logs, ddof=1))
-    return values, 0.9 * spread * values.size ** (-0.2)
-
-
-def draw_height(heights: np.ndarray, bandwidth: float, rng: np.random.Generator) -> float:
-    """One target height from :func:`height_targets`' kernel density estimate."""
-    base = float(heights[rng.integers(heights.size)])
-    return base * math.exp(bandwidth * float(rng.standard_normal()))
-
-
-def ks_distance(a: Sequence[float], b: Sequence[float]) -> float:
-    """Two-sample Kolmogorov-Smirnov distance: the largest gap between the two empirical CDFs.
-
-    References
-    ----------
-    N. Smirnov, "Table for estimating the goodness of fit of empirical distributions", Ann. Math.
-    Statist. 19 (1948) (from memory).
-    """
-    x, y = np.sort(np.asarray(a, dtype=np.float64)), np.sort(np.asarray(b, dtype=np.float64))
-    if x.size == 0 or y.size == 0:
-        return math.nan
-    grid = np.concatenate([x, y])
-    fx = np.searchsorted(x, grid, side="right") / x.size
-    fy = np.searchsorted(y, grid, side="right") / y.size
-    return float(np.max(np.abs(fx - fy)))
 
 
 def real_heights(dataset: Dataset, category: str) -> np.ndarray:

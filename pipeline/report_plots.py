@@ -17,9 +17,9 @@ from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 from matplotlib.ticker import FormatStrFormatter, LogLocator, NullFormatter
 
-from .exemplars import ks_distance
 from .files import write_bytes_atomic
 from .geometry import GroundModel
+from .height_draws import ks_distance
 
 Boxes = Mapping[str, np.ndarray]
 """Per class name, an ``(N, 4) float`` array of COCO boxes ``(x, y, w, h)`` in pixels."""
@@ -188,7 +188,7 @@ def save_size_histograms(real: Boxes, new: Boxes, path: str | os.PathLike[str], 
 
     Each histogram is a density (area 1) so that a few hundred real boxes and a few new ones compare by
     shape; the legend gives the counts, the title both medians and the two-sample Kolmogorov-Smirnov
-    distance (:func:`pipeline.exemplars.ks_distance`).
+    distance (:func:`pipeline.height_draws.ks_distance`).
     """
     names = sorted(set(real) | set(new))
     columns = min(3, max(1, len(names)))

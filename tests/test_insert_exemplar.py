@@ -23,14 +23,13 @@ from pipeline.exemplars import (
     exemplar_silhouette,
     height_targets,
     ks_distance,
-    light_gain,
     nearer_boxes,
-    relit,
     with_lower_parts,
 )
 from pipeline.filters import FilterLimits
 from pipeline.geometry import fit_ground
 from pipeline.plan import Job
+from pipeline.relight import light_gain, relit
 from pipeline.silhouette import object_silhouette, repaint_mask
 from pipeline.stages.insert_exemplar import (
     MIN_VISIBLE_SHARE,

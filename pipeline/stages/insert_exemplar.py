@@ -22,12 +22,14 @@ import numpy as np
 
 from ..compose import Placed, detail_levels, feathered_paste, keep_detail, place_exemplar
 from ..dataset import Annotation, Scene
-from ..exemplars import ExemplarBank, draw_height, light_gain, relit
+from ..exemplars import ExemplarBank
 from ..generator import InpaintRequest
 from ..geometry import ground_for
+from ..height_draws import draw_height
 from ..placement import NoPlacement, place_at_height
 from ..plan import Job, derive_seed
 from ..recipe import StageSpec
+from ..relight import light_gain, relit
 from ..rle import encode as encode_rle
 from ..silhouette import RepaintRegion, box_pixels, object_silhouette, repaint_mask, segmentation_mask
 from .base import Candidate, Draft, Failure, NewObject, StageContext, takes_objects
