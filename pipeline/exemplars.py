@@ -27,6 +27,7 @@ from .dataset import Annotation, Dataset, Scene
 from .geometry import is_usable
 from .height_draws import height_targets, ks_distance
 from .provenance import KEY
+from .relight import image_light
 from .silhouette import box_pixels, object_silhouette
 
 MAX_OCCLUDED_SHARE = 0.2
@@ -71,7 +72,7 @@ class Exemplar:
         Where the silhouette came from (``"segmentation"`` or ``"grabcut"``).
     light : (3,) float64 ndarray or None
         Mean RGB of the whole source image, its light by the grey-world assumption (see
-        :func:`light_gain`).
+        :func:`pipeline.relight.light_gain`).
     """
 
     image_id: int
@@ -263,8 +264,7 @@ def _cut_out(image: np.ndarray, ann: Annotation, scene: Scene, nearer: np.ndarra
     pixels = np.ascontiguousarray(image[p0:p1, q0:q1])
     alpha = mask[p0:p1, q0:q1].astype(np.float32)
     bounds = (c0 - q0, r0 - p0, c1 - q0, r1 - p0)
-    light = image.reshape(-1, 3).mean(axis=0)
-    return Exemplar(scene.id, ann.id, scene.file_name, pixels, alpha, bounds, source, light), ""
+    return Exemplar(scene.id, ann.id, scene.file_name, pixels, alpha, bounds, source, image_light(image)), ""
 
 
 def without_thin_parts(mask: np.ndarray, box_height: float) -> np.ndarray:

@@ -3,13 +3,20 @@
 from __future__ import annotations
 
 from dataclasses import replace
+from typing import TYPE_CHECKING
 
 import numpy as np
 
-from .exemplars import Exemplar
+if TYPE_CHECKING:
+    from .exemplars import Exemplar
 
 LIGHT_GAIN_LIMITS = (0.5, 2.0)
 """Smallest and largest per-channel gain :func:`light_gain` gives."""
+
+
+def image_light(image: np.ndarray) -> np.ndarray:
+    """The light of an ``(H, W, 3)`` image by the grey-world assumption: its mean RGB, ``(3,) float64``."""
+    return image.reshape(-1, 3).mean(axis=0)
 
 
 def light_gain(exemplar: Exemplar, scene: np.ndarray, strength: float) -> np.ndarray:
@@ -26,8 +33,7 @@ def light_gain(exemplar: Exemplar, scene: np.ndarray, strength: float) -> np.nda
     """
     if exemplar.light is None or strength == 0:
         return np.ones(3)
-    target = scene.reshape(-1, 3).mean(axis=0)
-    ratio = (target + 1.0) / (np.asarray(exemplar.light, np.float64) + 1.0)
+    ratio = (image_light(scene) + 1.0) / (np.asarray(exemplar.light, np.float64) + 1.0)
     return np.clip(ratio**strength, *LIGHT_GAIN_LIMITS)
 
 

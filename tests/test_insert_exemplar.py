@@ -163,7 +163,7 @@ def test_scenes_to_try_start_with_the_planned_one(train):
     spec = SimpleNamespace(options={"objects_per_image": (1, 2)})
     ctx = SimpleNamespace(dataset=train, limits=limits)
     job = Job(0, 3, 1234, 0, ((7, -1), (9, -1)))
-    first = scenes_to_try(job, 1, spec, ctx)
+    first = list(scenes_to_try(job, 1, spec, ctx))
     assert [s.id for s in first] == [s.id for s in scenes_to_try(job, 1, spec, ctx)]  # same seed, same scenes
     assert first[0].id == train.scenes[9].id and len({s.id for s in first}) == len(first) == SCENE_TRIES
     assert all(sum(not a.iscrowd for a in s.annotations) + 1 <= 6 for s in first[1:])

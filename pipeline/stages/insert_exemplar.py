@@ -14,7 +14,7 @@ box from its bounds, segmentation as COCO RLE.
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
 from dataclasses import replace
 
 import cv2
@@ -131,15 +131,17 @@ def draft(job: Job, attempt: int, spec: StageSpec, ctx: StageContext, wanted: in
     return made
 
 
-def scenes_to_try(job: Job, attempt: int, spec: StageSpec, ctx: StageContext) -> list[Scene]:
+def scenes_to_try(job: Job, attempt: int, spec: StageSpec, ctx: StageContext) -> Iterator[Scene]:
     """The attempt's planned scene, then up to ``SCENE_TRIES - 1`` others drawn from the attempt's seed
-    among the scenes that can take the stage's objects (same seed, same scenes)."""
+    among the scenes that can take the stage's objects (same seed, same scenes). The others are looked
+    for only when asked for: most attempts find room in their planned scene."""
     first = job.sources[attempt][0]
+    yield ctx.dataset.scenes[first]
     least = spec.options["objects_per_image"][0]
     room = [i for i, scene in enumerate(ctx.dataset.scenes) if i != first and takes_objects(scene, least, ctx.limits)]
     rng = np.random.default_rng(derive_seed(job.attempt_seed(attempt), "scenes"))
-    others = rng.permutation(len(room))[: SCENE_TRIES - 1]
-    return [ctx.dataset.scenes[first], *(ctx.dataset.scenes[room[k]] for k in others)]
+    for k in rng.permutation(len(room))[: SCENE_TRIES - 1]:
+        yield ctx.dataset.scenes[room[k]]
 
 
 def _draft_in(
