@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import json
 import shutil
+from dataclasses import replace
 from pathlib import Path
 from urllib.parse import unquote
 
@@ -23,6 +24,7 @@ from pipeline.audit import audit_run, read_audit
 from pipeline.audit.core import torch_threads
 from pipeline.audit.features import coverage, embed, knn_radii, near_copies, precision_recall, train_feature_net
 from pipeline.audit.instances import by_class, check_heldout, crop_instances, real_instances, synthetic_instances
+from pipeline.audit.repeated import LOG_SCALE_SD, SHIFT_SD, exemplar_copies, jittered
 from pipeline.audit.sharpness import compare_sharpness, edge_strength, silhouette_fit
 from pipeline.audit.two_sample import binomial_tail, group_folds, two_sample_test, wilson_interval
 from pipeline.cli import app
@@ -178,6 +180,31 @@ def test_held_out_exemplars_separate_repetition_from_appearance(test_crops):
         two_sample_test(cars[:60], repeated, rng=0, groups_b=[g % 3 for g in groups], **FAST)
     with pytest.raises(ValueError, match="one key per crop"):
         two_sample_test(cars[:60], repeated, rng=0, groups_b=groups[:-1], **FAST)
+
+
+def test_exemplar_copies_follow_the_composites():
+    train = by_class(real_instances(_seed("train")))["tractor"]
+    made = [replace(t, exemplar=(t.image_id, t.annotation_id), mirrored=k % 2 == 1) for k, t in enumerate(train)]
+    synthetic = [made[k % 5] for k in range(15)]  # five exemplars, three composites each
+    copies, mirrored = exemplar_copies(synthetic, train, np.random.default_rng(0))
+    assert [(c.image_id, c.annotation_id) for c in copies] == [s.exemplar for s in synthetic]
+    assert mirrored.tolist() == [s.mirrored for s in synthetic]
+    assert len({c.box for c in copies}) == 15  # no two copies share a crop
+    again, _ = exemplar_copies(synthetic, train, np.random.default_rng(0))
+    assert [c.box for c in again] == [c.box for c in copies]
+    assert exemplar_copies(synthetic, train[1:], np.random.default_rng(0)) is None  # exemplar not in train
+    assert exemplar_copies([replace(synthetic[0], exemplar=None)], train, np.random.default_rng(0)) is None
+
+
+def test_jitter_has_the_stated_spread():
+    rng = np.random.default_rng(1)
+    boxes = np.array([jittered((100.0, 50.0, 40.0, 20.0), rng) for _ in range(4000)])
+    log_scale = np.log(boxes[:, 2] / 40.0)
+    assert np.allclose(np.log(boxes[:, 3] / 20.0), log_scale)  # aspect kept
+    shift_x = (boxes[:, 0] + boxes[:, 2] / 2 - 120.0) / 40.0
+    shift_y = (boxes[:, 1] + boxes[:, 3] / 2 - 60.0) / 20.0
+    assert abs(log_scale.std() - LOG_SCALE_SD) < 0.005 and abs(log_scale.mean()) < 0.005
+    assert abs(shift_x.std() - SHIFT_SD) < 0.004 and abs(shift_y.std() - SHIFT_SD) < 0.004
 
 
 def test_group_folds_keep_groups_whole_and_balance_the_folds():
@@ -341,6 +368,8 @@ def test_audit_of_copied_training_tractors(tmp_path):
     assert tractor["two_sample"]["low"] <= 0.5 <= tractor["two_sample"]["high"]  # real against real
     unseen = tractor["unseen_exemplars"]  # 20 exemplars of one instance each: held out one by one
     assert unseen["trials"] == 40 and unseen["low"] <= 0.5 <= unseen["high"]
+    repeated = tractor["repeated_exemplars"]  # each used once: jittered copies of real training tractors
+    assert repeated["trials"] == 40 and repeated["low"] <= 0.5 <= repeated["high"]
     assert tractor["near_copies"]["share"] == 1.0  # they are the training crops
     assert tractor["box_fit"]["synthetic"] is None  # no silhouettes recorded
     assert 0.7 < tractor["sharpness"]["ratio"] < 1.4

@@ -32,6 +32,7 @@ from .instances import (
     split_tiny,
     synthetic_instances,
 )
+from .repeated import exemplar_copies
 from .sharpness import box_fit, compare_sharpness
 from .two_sample import TwoSampleSettings
 
@@ -97,8 +98,10 @@ def _class_figures(
     *,
     tests: TwoSampleSettings,
     rng: np.random.Generator,
+    cache: dict[Path, np.ndarray] | None = None,
 ) -> tuple[dict[str, Any], np.ndarray | None, dict[str, Any] | None]:
-    """Figures of one class; also the synthetic held-out scores and the near-copy record (for examples)."""
+    """Figures of one class; also the synthetic held-out scores and the near-copy record (for examples).
+    ``cache`` holds decoded images by path (shared with the crops already cut)."""
     out: dict[str, Any] = {"two_sample": None, "floor": None, "coverage": None, "near_copies": None, "notes": []}
     scores = None
     folds = tests.folds
@@ -130,6 +133,7 @@ def _class_figures(
     out["sharpness"] = compare_sharpness(syn.sharpness, syn.heights, real.sharpness, real.heights)
     out["box_fit"] = {"synthetic": box_fit(syn.instances), "real": box_fit(real.instances)}
     out["unseen_exemplars"] = _unseen_exemplars(syn, real, tests=tests, rng=rng, notes=out["notes"])
+    out["repeated_exemplars"] = _repeated_exemplars(syn, real, train, tests=tests, rng=rng, cache=cache)
     return out, scores, copies
 
 
@@ -151,6 +155,21 @@ def _unseen_exemplars(
     except ValueError as exc:
         notes.append(f"the test on unseen exemplars: {exc}")
         return None
+
+
+def _repeated_exemplars(
+    syn: Crops, real: Crops, train: Crops, *, tests: TwoSampleSettings, rng: np.random.Generator, cache: dict
+) -> dict[str, Any] | None:
+    """The plain test of the exemplars themselves, repeated as the run used them, against the held-out
+    real instances (:mod:`.repeated`); ``None`` when the synthetic instances do not all name an exemplar
+    of the training split."""
+    made = exemplar_copies(syn.instances, train.instances, rng)
+    if made is None or min(len(syn), len(real)) < tests.folds:
+        return None
+    items, mirrored = made
+    crops = crop_instances(items, images=cache).test
+    crops[mirrored] = crops[mirrored][:, :, ::-1]
+    return tests.run(real.test, crops, rng).to_dict()
 
 
 def _groups(
@@ -185,7 +204,7 @@ def _audit_class(
     say(f"{name}: cropping {len(syn_items)} synthetic, {len(real_items)} held-out, {len(train_items)} training")
     syn, real, train = (crop_instances(items, images=cache) for items in (syn_items, real_items, train_items))
     say(f"{name}: two-sample tests, coverage, near-copies")
-    figures, scores, copies = _class_figures(syn, real, train, net, tests=tests, rng=rng)
+    figures, scores, copies = _class_figures(syn, real, train, net, tests=tests, rng=rng, cache=cache)
     entry = {
         "n_synthetic": len(syn),
         "n_real": len(real),
@@ -259,7 +278,8 @@ def audit_run(
     dict
         What ``audit.json`` holds: ``format``, ``run``, ``heldout``, ``train``, ``seed``, ``settings``,
         ``model`` (the run's model identity), ``classes`` (per class: ``n_synthetic``, ``n_real``,
-        ``n_train``, ``skipped_small``, ``two_sample``, ``floor``, ``unseen_exemplars``, ``coverage``,
+        ``n_train``, ``skipped_small``, ``two_sample``, ``floor``, ``unseen_exemplars``,
+        ``repeated_exemplars``, ``coverage``,
         ``near_copies``, ``sharpness``, ``box_fit``, ``examples``, ``notes``).
 
     Raises

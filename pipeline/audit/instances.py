@@ -52,7 +52,7 @@ WHOLE_IMAGE_STAGES = frozenset({"rebackground", "restyle"})
 class Instance:
     """One object to crop: its image file, COCO box, class name, ids and silhouette (or ``None``), and for
     an inserted object the real instance it was made from (``exemplar``: ``(image_id, annotation_id)`` of
-    the training split, ``None`` otherwise)."""
+    the training split, ``None`` otherwise) and whether it was placed mirrored."""
 
     path: Path
     box: tuple[float, float, float, float]
@@ -63,6 +63,7 @@ class Instance:
     segmentation: Any = None
     image_size: tuple[int, int] = (0, 0)
     exemplar: tuple[int, int] | None = None
+    mirrored: bool = False
 
 
 @dataclass(frozen=True)
@@ -153,6 +154,7 @@ def _instance(scene, ann, names: Mapping[int, str]) -> Instance:
         ann.segmentation,
         (scene.width, scene.height),
         _exemplar_of(ann.extra),
+        _mirrored(ann.extra),
     )
 
 
@@ -164,6 +166,11 @@ def _exemplar_of(extra: Mapping[str, Any]) -> tuple[int, int] | None:
         return None
     image_id, ann_id = exemplar.get("image_id"), exemplar.get("annotation_id")
     return (image_id, ann_id) if isinstance(image_id, int) and isinstance(ann_id, int) else None
+
+
+def _mirrored(extra: Mapping[str, Any]) -> bool:
+    record = extra.get(KEY)
+    return isinstance(record, Mapping) and record.get("mirrored") is True
 
 
 def by_class(instances: Iterable[Instance]) -> dict[str, list[Instance]]:

@@ -74,9 +74,11 @@ def audit(
 ) -> None:
     """Measure how far a run's synthetic instances are from real ones, per class; save RUN_DIR/audit.json.
 
-    Figures: a classifier two-sample test (real vs synthetic crops, and real vs real as the floor),
-    improved precision and recall in features learned from the real training crops, sharpness by box
-    height, box fit where a silhouette is known, and near-copies of training crops. `rarefill report`
+    Figures: a classifier two-sample test (real vs synthetic crops, and real vs real as the floor; for
+    exemplar insertion also with each exemplar's composites held out together, and on the real exemplars
+    themselves repeated as the run used them: the most the pool allows), improved precision and recall
+    in features learned from the real training crops, sharpness by box height, box fit where a
+    silhouette is known, and near-copies of training crops. `rarefill report`
     then shows them, with the instances the classifier found most and least real.
 
     Example: rarefill audit outputs/more-tractors --real seed_scenes/test.json
