@@ -15,7 +15,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from .dataset import Dataset, Scene
-from .errors import ModelError
+from .errors import ModelError, RecipeError
 from .generator import Generator
 from .job_record import attempt_entry, attempt_scene, output_entry
 from .judge import judge
@@ -55,6 +55,34 @@ def open_model(recipe: Recipe) -> tuple[Generator, Any]:
     except ModelError:
         verifier = None  # a user's own pipeline has no verifier: the "present" filter is skipped
     return generator, verifier
+
+
+def check_model_classes(recipe: Recipe, generator: Generator) -> None:
+    """Refuse, before anything is made, an insert stage whose class the model cannot be asked for.
+
+    The class is the model's conditioning label where it draws the object (``appearance = "generated"``)
+    or repaints a placed exemplar (``harmonise``, with a model that takes exemplars); a model trained on
+    other data does not know the data set's class names.
+
+    Raises
+    ------
+    RecipeError
+        Naming the recipe, the stage and the model's classes, and what to do instead.
+    """
+    known = tuple(getattr(generator, "classes", ()))
+    for spec in recipe.stages:
+        if spec.kind != "insert" or spec.target_class in known:
+            continue
+        exemplar = spec.options["appearance"] == "exemplar"
+        if exemplar and not (spec.options["harmonise"] and getattr(generator, "accepts_exemplar", False)):
+            continue  # pasted: the model is not asked
+        fix = "set harmonise = false to paste the exemplars, " if exemplar else ""
+        raise RecipeError(
+            recipe.path,
+            f"stage[{spec.index}].class",
+            f"the model {recipe.model} does not know {spec.target_class!r} (its classes: {', '.join(known) or 'none'})",
+            hint=f"train a model on this data set with `rarefill fit`, {fix}or rename the class to one it knows",
+        )
 
 
 def stage_context(setup: Setup, generator: Generator, verifier: Any) -> StageContext:

@@ -17,7 +17,7 @@ from typing import Any
 
 import numpy as np
 
-from .chunk_maker import made_chunks, open_model
+from .chunk_maker import check_model_classes, made_chunks, open_model
 from .dataset import Dataset, category_entry, load_dataset
 from .errors import UsageError
 from .exemplars import ExemplarBank, build_bank, height_report
@@ -183,6 +183,7 @@ def run_recipe(
     opened_here = generator is None
     if opened_here:
         generator, verifier = open_model(recipe)
+    check_model_classes(recipe, generator)
 
     # 2. claim the output folder; chunks an earlier start committed are skipped
     identity = run_identity(setup, shard)

@@ -21,7 +21,7 @@ from typing import Any
 
 import numpy as np
 
-from .chunk_maker import ChunkMaker, accepted, open_model
+from .chunk_maker import ChunkMaker, accepted, check_model_classes, open_model
 from .errors import UsageError
 from .files import write_bytes_atomic, write_json_atomic
 from .generator import Generator
@@ -84,6 +84,7 @@ def run_job(
     job = find_job(setup.plan, key)
     if generator is None:
         generator, verifier = open_model(recipe)
+    check_model_classes(recipe, generator)
     out = Path(out)
     _check_scratch(out)
 

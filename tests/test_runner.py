@@ -17,7 +17,7 @@ from pycocotools.coco import COCO
 
 from pipeline.collect import collect
 from pipeline.dataset import load_dataset
-from pipeline.errors import DatasetWarning, RunError
+from pipeline.errors import DatasetWarning, RecipeError, RunError
 from pipeline.recipe import load_recipe
 from pipeline.runner import prepare, run_recipe
 
@@ -193,6 +193,20 @@ def test_unknown_class_is_a_usage_error(tmp_path):
     path.write_text(path.read_text().replace('class = "tractor"', 'class = "combine"'))
     with pytest.raises(Exception, match="'combine' is not a category"):
         prepare(load_recipe(path))
+
+
+def test_a_class_the_model_does_not_know_is_refused_before_anything_is_written(tmp_path):
+    # The model is asked for the class when it repaints the placed exemplar (or draws the object); a model
+    # trained on other data does not know it. The run must say so up front, not fail inside a worker.
+    recipe = load_recipe(write_recipe(tmp_path, count=4))
+    other = ShadeGenerator(classes=("car", "van"))
+    with pytest.raises(
+        RecipeError, match=r"stage\[0\]\.class: the model .* does not know 'tractor' \(its classes: car, van\)"
+    ):
+        run_recipe(recipe, generator=other, verifier=AlwaysVerifier())
+    assert not (tmp_path / "out").exists()
+    pasted = load_recipe(write_recipe(tmp_path, count=4, output="pasted", options="harmonise = false"))
+    assert run_recipe(pasted, generator=other, verifier=AlwaysVerifier()).accepted == 4  # the model is not asked
 
 
 KILL_SCRIPT = """
