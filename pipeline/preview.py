@@ -13,7 +13,7 @@ from typing import Any
 
 import numpy as np
 
-from .chunk_maker import open_model
+from .chunk_maker import check_model_classes, open_model
 from .dataset import Dataset
 from .generator import Generator
 from .geometry import CameraGroups, ground_for
@@ -80,6 +80,7 @@ def preview_recipe(
     mine = setup.plan.shard(*shard)
     if generator is None:
         generator, _ = open_model(recipe)
+    check_model_classes(recipe, generator)
     done = RunFolder.inspect(recipe.output, run_identity(setup, shard))
 
     jobs = [setup.plan.jobs[i] for c in mine for i in setup.plan.chunks[c]]

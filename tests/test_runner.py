@@ -18,6 +18,7 @@ from pycocotools.coco import COCO
 from pipeline.collect import collect
 from pipeline.dataset import load_dataset
 from pipeline.errors import DatasetWarning, RecipeError, RunError
+from pipeline.preview import preview_recipe
 from pipeline.recipe import load_recipe
 from pipeline.runner import prepare, run_recipe
 
@@ -200,10 +201,11 @@ def test_a_class_the_model_does_not_know_is_refused_before_anything_is_written(t
     # trained on other data does not know it. The run must say so up front, not fail inside a worker.
     recipe = load_recipe(write_recipe(tmp_path, count=4))
     other = ShadeGenerator(classes=("car", "van"))
-    with pytest.raises(
-        RecipeError, match=r"stage\[0\]\.class: the model .* does not know 'tractor' \(its classes: car, van\)"
-    ):
+    refusal = r"stage\[0\]\.class: the model .* does not know 'tractor' \(its classes: car, van\)"
+    with pytest.raises(RecipeError, match=refusal):
         run_recipe(recipe, generator=other, verifier=AlwaysVerifier())
+    with pytest.raises(RecipeError, match=refusal):  # --dry-run checks what the run would
+        preview_recipe(recipe, generator=other)
     assert not (tmp_path / "out").exists()
     pasted = load_recipe(write_recipe(tmp_path, count=4, output="pasted", options="harmonise = false"))
     assert run_recipe(pasted, generator=other, verifier=AlwaysVerifier()).accepted == 4  # the model is not asked
