@@ -158,7 +158,13 @@ def _unseen_exemplars(
 
 
 def _repeated_exemplars(
-    syn: Crops, real: Crops, train: Crops, *, tests: TwoSampleSettings, rng: np.random.Generator, cache: dict
+    syn: Crops,
+    real: Crops,
+    train: Crops,
+    *,
+    tests: TwoSampleSettings,
+    rng: np.random.Generator,
+    cache: dict[Path, np.ndarray] | None,
 ) -> dict[str, Any] | None:
     """The plain test of the exemplars themselves, repeated as the run used them, against the held-out
     real instances (:mod:`.repeated`); ``None`` when the synthetic instances do not all name an exemplar
@@ -279,8 +285,8 @@ def audit_run(
         What ``audit.json`` holds: ``format``, ``run``, ``heldout``, ``train``, ``seed``, ``settings``,
         ``model`` (the run's model identity), ``classes`` (per class: ``n_synthetic``, ``n_real``,
         ``n_train``, ``skipped_small``, ``two_sample``, ``floor``, ``unseen_exemplars``,
-        ``repeated_exemplars``, ``coverage``,
-        ``near_copies``, ``sharpness``, ``box_fit``, ``examples``, ``notes``).
+        ``repeated_exemplars``, ``coverage``, ``near_copies``, ``sharpness``, ``box_fit``, ``examples``,
+        ``notes``).
 
     Raises
     ------
