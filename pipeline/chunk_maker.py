@@ -10,11 +10,9 @@ from __future__ import annotations
 import multiprocessing
 import os
 from collections.abc import Callable, Iterator, Sequence
-from functools import lru_cache
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from .dataset import Dataset, Scene
 from .errors import ModelError, RecipeError
 from .generator import Generator
 from .job_record import attempt_entry, attempt_scene, output_entry
@@ -22,7 +20,7 @@ from .judge import judge
 from .plan import Job
 from .recipe import Recipe
 from .stages import Candidate, Draft, Failure, StageContext, stage_module
-from .surface import Surface, mask_for
+from .surface import surface_cache
 from .writer import RunFolder
 
 if TYPE_CHECKING:
@@ -92,7 +90,7 @@ def stage_context(setup: Setup, generator: Generator, verifier: Any) -> StageCon
         generator=generator,
         ground=setup.ground,
         limits=setup.limits,
-        surface=_surface_cache(setup.dataset),
+        surface=surface_cache(setup.dataset),
         aspect_ratios=setup.ratios,
         footprint_rows=setup.footprint_rows,
         verifier=verifier,
@@ -245,13 +243,3 @@ class ChunkMaker:
             limits=self.setup.limits,
         )
         return entry, output
-
-
-def _surface_cache(dataset: Dataset) -> Callable[[Scene], Surface]:
-    scenes = {s.id: s for s in dataset.scenes}
-
-    @lru_cache(maxsize=256)
-    def surface(scene_id: int) -> Surface:
-        return mask_for(scenes[scene_id], dataset=dataset)
-
-    return lambda scene: surface(scene.id)

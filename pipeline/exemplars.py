@@ -16,19 +16,21 @@ from __future__ import annotations
 
 import json
 from collections import Counter
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import cv2
 import numpy as np
 
+from .across_road import real_laterals
 from .dataset import Annotation, Dataset, Scene
 from .geometry import is_usable
 from .height_draws import height_targets, ks_distance
 from .provenance import KEY
 from .relight import image_light
 from .silhouette import box_pixels, object_silhouette
+from .surface import Surface
 
 MAX_OCCLUDED_SHARE = 0.2
 """An instance whose box is covered by nearer objects' boxes by more than this share is not used: its
@@ -119,6 +121,9 @@ class ExemplarBank:
         The class's real box heights (frame-truncated boxes left out) that target heights are drawn from.
     bandwidth : float
         Log-space kernel bandwidth of the target heights (see :func:`height_targets`).
+    laterals : (M,) float64 ndarray
+        The class's real places across the road (:func:`pipeline.across_road.real_laterals`); empty
+        when the bank was built without surfaces.
     """
 
     category: str
@@ -128,6 +133,7 @@ class ExemplarBank:
     max_upscale: float = 1.5
     heights: np.ndarray = field(default_factory=lambda: np.zeros(0))
     bandwidth: float = 0.0
+    laterals: np.ndarray = field(default_factory=lambda: np.zeros(0))
 
     def usable_for(self, height_px: float) -> list[int]:
         """Indices of the exemplars that reach ``height_px`` within the upscale limit."""
@@ -175,7 +181,14 @@ def occluded_share(ann: Annotation, nearer: np.ndarray) -> float:
     return float(nearer[r0:r1, c0:c1].mean())
 
 
-def build_bank(dataset: Dataset, category: str, *, max_upscale: float = 1.5, order_seed: int = 0) -> ExemplarBank:
+def build_bank(
+    dataset: Dataset,
+    category: str,
+    *,
+    max_upscale: float = 1.5,
+    order_seed: int = 0,
+    surface: Callable[[Scene], Surface] | None = None,
+) -> ExemplarBank:
     """Cut out every usable instance of ``category`` in ``dataset`` (images read once each).
 
     Parameters
@@ -188,6 +201,9 @@ def build_bank(dataset: Dataset, category: str, *, max_upscale: float = 1.5, ord
         real objects of the target's size.
     order_seed : int
         Seeds the fixed shuffle of the usable instances (the round-robin order).
+    surface : callable, optional
+        A scene's drivable surface (:func:`pipeline.surface.surface_cache`), for the class's real places
+        across the road (``ExemplarBank.laterals``).
 
     Returns
     -------
@@ -222,8 +238,16 @@ def build_bank(dataset: Dataset, category: str, *, max_upscale: float = 1.5, ord
     order = np.random.default_rng(order_seed).permutation(len(found))
     heights = real_heights(dataset, category)
     heights, bandwidth = height_targets(heights) if heights.size else (heights, 0.0)
+    laterals = real_laterals(dataset, category, surface) if surface is not None else np.zeros(0)
     return ExemplarBank(
-        category, tuple(found[i] for i in order), considered, dict(left_out), float(max_upscale), heights, bandwidth
+        category,
+        tuple(found[i] for i in order),
+        considered,
+        dict(left_out),
+        float(max_upscale),
+        heights,
+        bandwidth,
+        laterals,
     )
 
 

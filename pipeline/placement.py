@@ -18,6 +18,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from . import filters
+from .across_road import draw_column, road_span
 from .dataset import Dataset, Scene
 from .filters import FilterLimits
 from .geometry import GroundModel, focal_length
@@ -190,6 +191,7 @@ def place_at_height(
     existing_boxes: Sequence[Sequence[float]],
     exact_pixels: bool = False,
     max_hidden: float = 1.0,
+    laterals: np.ndarray | None = None,
     focal_px: float | None = None,
     max_tries: int = 40,
 ) -> Placement | NoPlacement:
@@ -197,10 +199,11 @@ def place_at_height(
 
     The bottom edge goes to the row where ``category`` is ``height_px`` tall (``horizon + h / ratio``,
     rounded to a pixel edge; the height then follows the model exactly at that row); the centre column is
-    drawn from the surface pixels of that row until a box passes the surface, overlap and gap filters.
-    Drawing the height first and the row from it keeps the heights of placed objects those asked for,
-    however the surface's area is spread over the rows (far rows hold few surface pixels, so drawing a
-    surface pixel first would make small objects rare).
+    drawn from the surface pixels of that row (with ``laterals``, around real places across the road)
+    until a box passes the surface, overlap and gap filters. Drawing the height first and the row from it
+    keeps the heights of placed objects those asked for, however the surface's area is spread over the
+    rows (far rows hold few surface pixels, so drawing a surface pixel first would make small objects
+    rare).
 
     Parameters
     ----------
@@ -218,6 +221,9 @@ def place_at_height(
         applied; the gap filter still keeps objects physically apart.
     max_hidden : float
         Largest share of the box that the boxes of nearer objects may cover (``"occlusion"`` otherwise).
+    laterals : (N,) float ndarray, optional
+        Real places across the road (:func:`pipeline.across_road.real_laterals`, N >= 1); each try then
+        draws the centre with :func:`pipeline.across_road.draw_column` on the row's road.
     max_tries : int
         Columns drawn before giving up.
 
@@ -246,13 +252,20 @@ def place_at_height(
     nearer = np.asarray([b for b in others if b[1] + b[3] > bottom], dtype=np.float64).reshape(-1, 4)
     cols = np.flatnonzero(surface.mask[bottom - 1])
     cols = cols[(cols + 0.5 - w / 2 >= 0) & (cols + 0.5 + w / 2 <= scene.width)]
-    if cols.size == 0:
+    span = road_span(surface.mask[bottom - 1])
+    if cols.size == 0 or span is None:
         return NoPlacement(f"no drivable surface on row {bottom} for a {w:.0f} px wide {category}", {"no_surface": 1})
     focal = filters.focal_from_fov(ground.image_width) if focal_px is None else focal_px
     failures: Counter[str] = Counter()
     for attempt in range(1, max_tries + 1):
-        centre = float(cols[rng.integers(cols.size)]) + rng.random()
+        if laterals is None or not laterals.size:
+            centre = float(cols[rng.integers(cols.size)]) + rng.random()
+        else:
+            centre = draw_column(laterals, span, rng)
         box = (centre - w / 2, bottom - h, w, h)
+        if box[0] < 0 or box[0] + w > scene.width:
+            failures["outside_image"] += 1
+            continue
         if max_hidden < 1.0 and _covered(box, nearer) > max_hidden:
             failures["occlusion"] += 1
             continue

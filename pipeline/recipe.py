@@ -175,6 +175,7 @@ STAGE_OPTIONS: dict[str, dict[str, tuple[Callable[[Any], Any], Any]]] = {
         "mirror": (_number(0.0, 1.0), 0.5),
         "hue_shift_deg": (_number(0.0, 180.0), 0.0),
         "light_match": (_number(0.0, 1.0), 1.0),
+        "across_road": (_one_of("real", "anywhere"), "real"),
         "heights": (_heights, "real"),
         "mask_margin": (_number(0.0, 0.5), 0.12),
     },

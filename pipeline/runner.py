@@ -28,7 +28,7 @@ from .placement import aspect_ratios
 from .plan import Plan, derive_seed, make_plan
 from .recipe import Recipe
 from .stages import stage_module
-from .surface import warn_missing_masks
+from .surface import surface_cache, warn_missing_masks
 from .tally import StageTally, read_manifest, summary_record, tally_stages
 from .writer import RUN_FORMAT, RunFolder, assemble, read_chunks
 
@@ -110,12 +110,14 @@ def prepare(recipe: Recipe) -> Setup:
         for spec in recipe.stages
     ]
     plan = make_plan(recipe, sources)
+    surfaces = surface_cache(dataset)
     banks = {
         spec.index: build_bank(
             dataset,
             spec.target_class,
             max_upscale=spec.options["max_upscale"],
             order_seed=derive_seed(recipe.seed, "exemplars", spec.index),
+            surface=surfaces,
         )  # fmt: skip
         for spec in recipe.stages
         if spec.kind == "insert" and spec.options["appearance"] == "exemplar"

@@ -10,8 +10,9 @@ from __future__ import annotations
 
 import math
 import warnings
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
+from functools import lru_cache
 from pathlib import Path
 
 import cv2
@@ -84,6 +85,17 @@ def mask_for(scene: Scene, *, dataset: Dataset | None = None) -> Surface:
     if not mask.any():
         raise DatasetError(source, where, "no mask named and no boxes of this image size to estimate a surface from")
     return Surface(mask, estimated=True)
+
+
+def surface_cache(dataset: Dataset, *, size: int = 256) -> Callable[[Scene], Surface]:
+    """:func:`mask_for` of the data set's scenes, the last ``size`` of them kept in memory."""
+    scenes = {s.id: s for s in dataset.scenes}
+
+    @lru_cache(maxsize=size)
+    def surface(scene_id: int) -> Surface:
+        return mask_for(scenes[scene_id], dataset=dataset)
+
+    return lambda scene: surface(scene.id)
 
 
 def warn_missing_masks(dataset: Dataset) -> int:

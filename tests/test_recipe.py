@@ -57,6 +57,7 @@ def test_good_recipe(tmp_path):
         "mirror": 0.5,
         "hue_shift_deg": 0.0,
         "light_match": 1.0,
+        "across_road": "real",
         "heights": "real",
         "mask_margin": 0.12,
     }

@@ -3,11 +3,13 @@
 For each new object: a target height drawn from the class's real box heights (kept for every attempt of
 the job, so retries on other scenes do not bias the heights toward those that fit easily), an exemplar
 from the bank that reaches that height within the upscale limit (round-robin over the job slots), a row
-where the ground model expects that height and a column on the surface (:func:`~pipeline.placement.
-place_at_height`), then :func:`~pipeline.compose.place_exemplar`. A generator that takes exemplars
-repaints the grown silhouette and shadow band in context (:func:`~pipeline.silhouette.repaint_mask`) and
-the exemplar's detail is put back (:func:`~pipeline.compose.keep_detail`); otherwise, or with
-``harmonise = false``, the exemplar is pasted with a light feather. The label is the placed silhouette:
+where the ground model expects that height and a column where the class's real instances stand across
+the road (``across_road = "real"``, :mod:`pipeline.across_road`; anywhere on the surface with
+``"anywhere"``; :func:`~pipeline.placement.place_at_height`), then :func:`~pipeline.compose.place_exemplar`.
+A generator that takes exemplars repaints the grown silhouette and shadow band in context
+(:func:`~pipeline.silhouette.repaint_mask`) and the exemplar's detail is put back
+(:func:`~pipeline.compose.keep_detail`); otherwise, or with ``harmonise = false``, the exemplar is pasted
+with a light feather. The label is the placed silhouette:
 box from its bounds, segmentation as COCO RLE.
 """
 
@@ -203,6 +205,7 @@ def _one_object(job, spec, ctx, bank, index, scene, image, surface, boxes, taken
         placement = place_at_height(
             scene, spec.target_class, height, aspect, ground_for(ctx.ground, scene), surface, rng, ctx.limits,
             existing_boxes=boxes, exact_pixels=True, max_hidden=PLACEMENT_HIDDEN_BOX_SHARE,
+            laterals=bank.laterals if spec.options["across_road"] == "real" else None,
         )  # fmt: skip
         if isinstance(placement, NoPlacement):
             return Failure("placement", placement.reason, {"failures": dict(placement.failures)})
