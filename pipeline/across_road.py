@@ -51,11 +51,11 @@ def lateral_position(box: Sequence[float], mask: np.ndarray) -> float | None:
 
 def real_laterals(dataset: Dataset, category: str, surface: Callable[[Scene], Surface]) -> np.ndarray:
     """Places across the road (:func:`lateral_position`) of the class's real instances that the frame
-    does not truncate, in data set order."""
+    does not truncate (crowd regions left out: :func:`pipeline.geometry.is_usable`), in data set order."""
     category_id = dataset.category_by_name(category).id
     out = []
     for scene in dataset.scenes:
-        mine = [a for a in scene.annotations if a.category_id == category_id and not a.iscrowd and is_usable(a, scene)]
+        mine = [a for a in scene.annotations if a.category_id == category_id and is_usable(a, scene)]
         if mine:
             mask = surface(scene).mask
             out += [u for u in (lateral_position(a.bbox, mask) for a in mine) if u is not None]

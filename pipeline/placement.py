@@ -252,13 +252,14 @@ def place_at_height(
     nearer = np.asarray([b for b in others if b[1] + b[3] > bottom], dtype=np.float64).reshape(-1, 4)
     cols = np.flatnonzero(surface.mask[bottom - 1])
     cols = cols[(cols + 0.5 - w / 2 >= 0) & (cols + 0.5 + w / 2 <= scene.width)]
-    span = road_span(surface.mask[bottom - 1])
-    if cols.size == 0 or span is None:
+    if cols.size == 0:
         return NoPlacement(f"no drivable surface on row {bottom} for a {w:.0f} px wide {category}", {"no_surface": 1})
     focal = filters.focal_from_fov(ground.image_width) if focal_px is None else focal_px
     failures: Counter[str] = Counter()
+    # The row holds surface (cols is not empty), so it has a road span.
+    span = road_span(surface.mask[bottom - 1]) if laterals is not None and laterals.size else None
     for attempt in range(1, max_tries + 1):
-        if laterals is None or not laterals.size:
+        if span is None:
             centre = float(cols[rng.integers(cols.size)]) + rng.random()
         else:
             centre = draw_column(laterals, span, rng)

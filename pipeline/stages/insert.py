@@ -21,6 +21,9 @@ Options (recipe ``[[stage]]`` keys):
 ``light_match``
     Exemplar mode: how far the exemplar's colours are carried from its source image's light into the
     scene's before it is placed, 0 (off) to 1 (the full ratio of the two images' mean colours; default).
+``across_road``
+    Exemplar mode: ``"real"`` (default) draws where each new object stands across the road from where the
+    class's real instances stand (:mod:`pipeline.across_road`); ``"anywhere"`` draws a surface column.
 ``heights``
     Exemplar mode: ``"real"`` (default) draws each target box height from the class's real box heights;
     ``[min, max]`` draws it log-uniformly in that range (pixels).
